@@ -1,0 +1,72 @@
+//! Every command-line option of `sluice`, in one place.
+
+use clap::{Args, Parser, Subcommand};
+use std::path::PathBuf;
+
+#[derive(Parser, Debug)]
+#[command(
+    name = "sluice",
+    version,
+    about = "Pathology extracts in, disclosure-controlled aggregates out"
+)]
+pub struct Cli {
+    /// Folder holding the policy files (profiles/, analytes.toml, ...).
+    #[arg(
+        long,
+        global = true,
+        default_value = "policies",
+        env = "SLUICE_POLICIES"
+    )]
+    pub policies: PathBuf,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Generate synthetic monthly extracts of an invented region, with planted ground truth.
+    Synth(SynthArgs),
+    /// Run every stage on the shipped demo data into a fresh folder.
+    Demo(DemoArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct SynthArgs {
+    /// Site profile to write the extracts in: a path, or a name under <policies>/profiles/.
+    #[arg(long, default_value = "quillmere")]
+    pub profile: String,
+    /// Output folder (extracts/, reference/, truth/ are created inside).
+    #[arg(long)]
+    pub out: PathBuf,
+    #[arg(long, default_value_t = 20_260_101)]
+    pub seed: u64,
+    #[arg(long, default_value_t = 160_000)]
+    pub patients: u32,
+    #[arg(long, default_value_t = 60)]
+    pub months: u32,
+    /// First month of the history (YYYY-MM).
+    #[arg(long, default_value = "2021-01")]
+    pub start: String,
+    /// Testing-policy change date (YYYY-MM-DD); default: 12 months before the history ends.
+    #[arg(long)]
+    pub policy_change: Option<String>,
+    /// Approximate number of result rows to write (scales the background request rate).
+    #[arg(long)]
+    pub rows: Option<u64>,
+    /// Share of patients on methotrexate.
+    #[arg(long, default_value_t = 0.04)]
+    pub mtx_share: f64,
+    /// Days of the previous month each monthly file repeats.
+    #[arg(long, default_value_t = 3)]
+    pub overlap_days: u32,
+}
+
+#[derive(Args, Debug)]
+pub struct DemoArgs {
+    /// The shipped demo data.
+    #[arg(long, default_value = "demo-data")]
+    pub data: PathBuf,
+    /// Fresh output folder (must not exist, or be empty).
+    #[arg(long, default_value = "out/demo")]
+    pub out: PathBuf,
+}
