@@ -345,7 +345,15 @@ fn specimen(s: &Synth, rng: &mut impl Rng, out: &mut MonthRows, sp: Spec<'_>) {
             && fault == Fault::None
             && matches!(value, Val::Num(_))
             && rng.random_bool(f.amended);
-        if fault == Fault::None && background && !critical && !amend && rng.random_bool(f.row_fault)
+        // Row faults go on numeric results only: a text result carries no unit, so a bad unit on
+        // it would not be a fault at all.
+        let numeric = matches!(value, Val::Num(_) | Val::Qual(..));
+        if fault == Fault::None
+            && background
+            && numeric
+            && !critical
+            && !amend
+            && rng.random_bool(f.row_fault)
         {
             fault = [
                 Fault::BadDate,
@@ -392,15 +400,21 @@ fn specimen(s: &Synth, rng: &mut impl Rng, out: &mut MonthRows, sp: Spec<'_>) {
             });
         }
     }
-    if spec_fault == Fault::None && rng.random_bool(f.cancelled) {
-        let id = model::CANCELLABLE[rng.random_range(0..model::CANCELLABLE.len())];
+    // A cancelled request is for a test the specimen has no result for, so it withdraws nothing.
+    let cancellable: Vec<usize> = model::CANCELLABLE
+        .iter()
+        .map(|id| model::index(id))
+        .filter(|i| !sp.analytes.contains(i))
+        .collect();
+    if spec_fault == Fault::None && !cancellable.is_empty() && rng.random_bool(f.cancelled) {
+        let ai = cancellable[rng.random_range(0..cancellable.len())];
         out.rows.push(Row {
             reported,
             collected: sp.collected,
             patient: sp.patient,
             specimen: sp.specimen,
             notes: notes_idx,
-            analyte: model::index(id) as u8,
+            analyte: ai as u8,
             value: Val::Empty,
             setting: sp.setting,
             status: Status::Cancelled,
