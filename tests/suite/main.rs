@@ -4,5 +4,6 @@
 
 mod cli;
 mod common;
+mod link;
 mod nhs;
 mod synth;

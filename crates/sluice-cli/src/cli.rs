@@ -28,6 +28,56 @@ pub enum Command {
     Synth(SynthArgs),
     /// Run every stage on the shipped demo data into a fresh folder.
     Demo(DemoArgs),
+    /// Make or inspect a pseudonymisation key.
+    #[command(subcommand)]
+    Key(KeyCommand),
+    /// Link extract files into the pseudonymised store (incremental, idempotent).
+    Link(LinkArgs),
+}
+
+#[derive(Subcommand, Debug)]
+pub enum KeyCommand {
+    /// Make a new 256-bit key from the operating system's secure random source (file mode 0600).
+    New {
+        #[arg(long)]
+        out: PathBuf,
+        /// A label stored with the key (e.g. site and year).
+        #[arg(long, default_value = "sluice")]
+        label: String,
+    },
+    /// Print the key's public fingerprint (never the key).
+    Fingerprint { file: PathBuf },
+}
+
+#[derive(Args, Debug)]
+pub struct LinkArgs {
+    /// Site profile: a path, or a name under <policies>/profiles/.
+    #[arg(long)]
+    pub profile: String,
+    /// The key file made by `sluice key new`.
+    #[arg(long)]
+    pub key: PathBuf,
+    /// The store folder (created if missing).
+    #[arg(long)]
+    pub store: PathBuf,
+    /// Where quarantined rows go, with their raw lines (default: <store>-quarantine).
+    #[arg(long)]
+    pub quarantine: Option<PathBuf>,
+    /// Tag dictionary: a path, or a name under <policies>/tags/.
+    #[arg(long, default_value = "dmard")]
+    pub tags: String,
+    /// Postcode centroid table (postcode,latitude,longitude) for home-to-GP distances.
+    #[arg(long, requires = "practices")]
+    pub postcodes: Option<PathBuf>,
+    /// GP practice table (practice_code,latitude,longitude or practice_code,postcode).
+    #[arg(long, requires = "postcodes")]
+    pub practices: Option<PathBuf>,
+    /// Keep the outward part of the home postcode (e.g. "QV9") as `home_area`.
+    #[arg(long)]
+    pub keep_area: bool,
+    /// Extract files, linked in the order given.
+    #[arg(required = true)]
+    pub files: Vec<PathBuf>,
 }
 
 #[derive(Args, Debug)]

@@ -1,6 +1,6 @@
 //! What each command does: resolve paths, call the library, print the outcome.
 
-use crate::cli::{Cli, Command, DemoArgs, SynthArgs};
+use crate::cli::{Cli, Command, DemoArgs, KeyCommand, LinkArgs, SynthArgs};
 use anyhow::{Context, Result, bail};
 use chrono::NaiveDate;
 use sluice_policy::{AnalyteTable, Profile};
@@ -11,7 +11,108 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
     match cli.command {
         Command::Synth(a) => synth(&cli.policies, a),
         Command::Demo(a) => demo(&cli.policies, a),
+        Command::Key(k) => key(k),
+        Command::Link(a) => link(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
     }
+}
+
+fn key(k: KeyCommand) -> Result<ExitCode> {
+    match k {
+        KeyCommand::New { out, label } => {
+            let key = sluice_link::key::Key::generate(&label)?;
+            key.save(&out)?;
+            eprintln!(
+                "wrote key {} (mode 0600); keep it inside the secure environment",
+                out.display()
+            );
+            println!("key fingerprint {}", key.fingerprint());
+        }
+        KeyCommand::Fingerprint { file } => {
+            println!("{}", sluice_link::key::Key::load(&file)?.fingerprint());
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// A policy file given by path, or by name under `<policies>/<dir>/`.
+fn named_policy(policies: &Path, dir: &str, name: &str) -> PathBuf {
+    let p = PathBuf::from(name);
+    if p.extension().is_some() || p.components().count() > 1 {
+        p
+    } else {
+        policies.join(dir).join(format!("{name}.toml"))
+    }
+}
+
+fn link(policies: &Path, a: &LinkArgs) -> Result<sluice_link::Report> {
+    let (profile, analytes) = load_policies(policies, &a.profile)?;
+    let tags = sluice_link::tags::TagDictionary::load(&named_policy(policies, "tags", &a.tags))?;
+    let key = sluice_link::key::Key::load(&a.key)?;
+    let geo = match (&a.postcodes, &a.practices) {
+        (Some(pc), Some(pr)) => Some(sluice_link::geo::Geo::load(pc, pr)?),
+        _ => None,
+    };
+    let quarantine = a.quarantine.clone().unwrap_or_else(|| {
+        let mut q = a.store.clone().into_os_string();
+        q.push("-quarantine");
+        PathBuf::from(q)
+    });
+    let inputs = sluice_link::Inputs {
+        profile: &profile,
+        analytes: &analytes,
+        tags: &tags,
+        key: &key,
+        geo: geo.as_ref(),
+    };
+    let opts = sluice_link::Options {
+        store: a.store.clone(),
+        quarantine: quarantine.clone(),
+        keep_area: a.keep_area,
+    };
+    let bar = progress(a.files.len() as u64, "link");
+    let started = std::time::Instant::now();
+    println!("file\trows\tstored\tquarantined\tduplicate\tsuperseded\tcancelled");
+    let report = sluice_link::link(&inputs, &opts, &a.files, |f| {
+        bar.inc(1);
+        let name = f
+            .file
+            .file_name()
+            .map(|n| n.to_string_lossy().to_string())
+            .unwrap_or_default();
+        let c = &f.accounting;
+        bar.suspend(|| {
+            if f.skipped {
+                println!("{name}\talready linked (same SHA-256), skipped");
+            } else {
+                println!(
+                    "{name}\t{}\t{}\t{}\t{}\t{}\t{}",
+                    c.rows, c.stored, c.quarantined, c.duplicate, c.superseded, c.cancelled
+                );
+            }
+        });
+    })?;
+    bar.finish_and_clear();
+    let t = &report.totals;
+    println!(
+        "store\t{}\t{} current\t{}\t{}\t{}\t{}",
+        t.rows, report.current_rows, t.quarantined, t.duplicate, t.superseded, t.cancelled
+    );
+    eprintln!(
+        "linked in {:.1}s: rows read {} = current {} + superseded {} + quarantined {} + duplicate {} + cancelled {}",
+        started.elapsed().as_secs_f64(),
+        t.rows,
+        report.current_rows,
+        t.superseded,
+        t.quarantined,
+        t.duplicate,
+        t.cancelled
+    );
+    eprintln!(
+        "store: {}   quarantine: {}",
+        a.store.display(),
+        quarantine.display()
+    );
+    Ok(report)
 }
 
 /// A profile given by path, or by name under `<policies>/profiles/`.
@@ -120,7 +221,7 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
     // Stage 1: the demo data is regenerated from its recorded settings and compared byte for byte,
     // which shows the generator is deterministic and the committed data is what it claims to be.
     println!(
-        "[1/1] synth: regenerating the demo data from {}",
+        "[1/3] synth: regenerating the demo data from {}",
         truth_path.display()
     );
     let c = &truth["config"];
@@ -166,6 +267,59 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
         a.data.display(),
         out.display()
     );
+
+    // Stage 2: a fresh key, made the way a site makes one. It never leaves the output folder.
+    let key_path = a.out.join("secure/key");
+    std::fs::create_dir_all(a.out.join("secure"))?;
+    println!("[2/3] key: making a new pseudonymisation key");
+    key(KeyCommand::New {
+        out: key_path.clone(),
+        label: format!("{site}-demo"),
+    })?;
+
+    // Stage 3: link every monthly extract into the store.
+    println!("[3/3] link: linking {}", a.data.join("extracts").display());
+    let mut files: Vec<PathBuf> = std::fs::read_dir(a.data.join("extracts"))?
+        .map(|e| e.map(|e| e.path()))
+        .collect::<Result<_, _>>()?;
+    files.sort();
+    let store = a.out.join("secure/store");
+    let report = link(
+        policies,
+        &LinkArgs {
+            profile: site.clone(),
+            key: key_path,
+            store: store.clone(),
+            quarantine: Some(a.out.join("secure/quarantine")),
+            tags: "dmard".into(),
+            postcodes: Some(a.data.join("reference/postcodes.csv")),
+            practices: Some(a.data.join("reference/practices.csv")),
+            keep_area: false,
+            files,
+        },
+    )?;
+    let expected = truth["expected_stored"].as_u64().unwrap_or(0);
+    if report.current_rows != expected {
+        bail!(
+            "the linked store holds {} current results but the planted truth expects {expected}",
+            report.current_rows
+        );
+    }
+    println!(
+        "      {} current results stored, as the planted truth expects",
+        report.current_rows
+    );
+    println!();
     println!("done: output in {}", a.out.display());
+    println!(
+        "  secure/store        pseudonymised results (Parquet) and manifest.json with the accounting"
+    );
+    println!(
+        "  secure/quarantine   rows set aside, with file, line, field, reason and the raw line"
+    );
+    println!(
+        "  secure/key          the demo's key (mode 0600); a real key never leaves the secure machine"
+    );
+    println!("  synth               the regenerated demo data");
     Ok(ExitCode::SUCCESS)
 }

@@ -193,6 +193,13 @@ impl Profile {
                 "must differ from the delimiter",
             ));
         }
+        if self.format.bom && self.format.encoding != Encoding::Utf8 {
+            return Err(PolicyError::invalid(
+                path,
+                "format.bom",
+                "a byte-order mark only exists for utf-8 files",
+            ));
+        }
         if self.site.label.is_empty()
             || !self
                 .site
