@@ -246,19 +246,68 @@ struct State<'a> {
     schema_ids: Vec<String>,
     tag_names: Vec<String>,
     keep_area: bool,
-    written_this_run: HashSet<PathBuf>,
+    /// Partition writes run on a writer thread while the next file is merged.
+    jobs: Option<std::sync::mpsc::SyncSender<WriteJob>>,
+    done: std::sync::mpsc::Receiver<Result<(i32, PartitionEntry), StoreError>>,
+    pending: HashSet<i32>,
+}
+
+/// One partition to write, owning everything the writer thread needs.
+struct WriteJob {
+    month: i32,
+    rows: Vec<StoreRow>,
+    strings: Strings,
+    analyte_ids: Vec<String>,
+    tag_names: Vec<String>,
+    keep_area: bool,
+    path: PathBuf,
+    rel: String,
+    meta: Vec<(String, String)>,
+}
+
+impl WriteJob {
+    fn run(self) -> Result<(i32, PartitionEntry), StoreError> {
+        let schema = Schema {
+            analyte_ids: &self.analyte_ids,
+            tag_names: &self.tag_names,
+            keep_area: self.keep_area,
+        };
+        let (rows, current, sha256) =
+            store::write_partition(&self.path, &self.rows, &self.strings, &schema, self.meta)?;
+        Ok((
+            self.month,
+            PartitionEntry {
+                month: store::month_label(self.month),
+                file: self.rel,
+                rows,
+                current,
+                sha256,
+            },
+        ))
+    }
 }
 
 impl State<'_> {
-    fn schema(&self) -> Schema<'_> {
-        Schema {
-            analyte_ids: &self.schema_ids,
-            tag_names: &self.tag_names,
-            keep_area: self.keep_area,
+    /// Takes in finished writes; with `wait_for`, blocks until that month's write is done.
+    fn drain(&mut self, wait_for: Option<i32>) -> Result<(), StoreError> {
+        loop {
+            let must_wait = wait_for.is_some_and(|m| self.pending.contains(&m));
+            let next = if must_wait {
+                self.done.recv().ok()
+            } else {
+                self.done.try_recv().ok()
+            };
+            let Some(r) = next else { return Ok(()) };
+            let (month, entry) = r?;
+            self.pending.remove(&month);
+            self.files.insert(month, entry);
         }
     }
 
     fn partition(&mut self, month: i32) -> Result<&mut Partition, StoreError> {
+        if self.pending.contains(&month) {
+            self.drain(Some(month))?;
+        }
         if !self.open.contains_key(&month) {
             let p = match self.files.get(&month) {
                 Some(e) => {
@@ -277,8 +326,9 @@ impl State<'_> {
         Ok(self.open.get_mut(&month).expect("inserted"))
     }
 
+    /// Hands a partition to the writer thread and drops it from memory.
     fn write(&mut self, month: i32) -> Result<(), StoreError> {
-        let Some(p) = self.open.get(&month) else {
+        let Some(p) = self.open.remove(&month) else {
             return Ok(());
         };
         if !p.dirty {
@@ -289,7 +339,6 @@ impl State<'_> {
             store::month_label(month),
             self.generation
         );
-        let path = self.store.join(&rel);
         let meta = vec![
             (
                 "sluice.schema_version".to_string(),
@@ -302,20 +351,47 @@ impl State<'_> {
             ("sluice.site".to_string(), self.manifest.site.clone()),
             ("sluice.month".to_string(), store::month_label(month)),
         ];
-        let (rows, current, sha256) =
-            store::write_partition(&path, &p.rows, &self.strings, &self.schema(), meta)?;
-        self.written_this_run.insert(path);
-        self.files.insert(
+        let job = WriteJob {
             month,
-            PartitionEntry {
-                month: store::month_label(month),
-                file: rel,
-                rows,
-                current,
-                sha256,
-            },
-        );
-        self.open.get_mut(&month).expect("open").dirty = false;
+            rows: p.rows,
+            strings: self.strings.clone(),
+            analyte_ids: self.schema_ids.clone(),
+            tag_names: self.tag_names.clone(),
+            keep_area: self.keep_area,
+            path: self.store.join(&rel),
+            rel,
+            meta,
+        };
+        self.pending.insert(month);
+        match &self.jobs {
+            Some(tx) if tx.send(job).is_ok() => Ok(()),
+            // The writer stopped: its error is waiting in `done`.
+            _ => {
+                self.drain(Some(month))?;
+                Err(StoreError::Refused {
+                    path: self.store.to_path_buf(),
+                    message: "the partition writer stopped".into(),
+                })
+            }
+        }
+    }
+
+    /// Writes every open partition and waits for all writes to finish.
+    fn finish(&mut self) -> Result<(), StoreError> {
+        let months: Vec<i32> = self.open.keys().copied().collect();
+        for m in months {
+            self.write(m)?;
+        }
+        self.jobs = None;
+        while let Some(&m) = self.pending.iter().next() {
+            self.drain(Some(m))?;
+            if self.pending.contains(&m) {
+                return Err(StoreError::Refused {
+                    path: self.store.to_path_buf(),
+                    message: "the partition writer stopped before finishing".into(),
+                });
+            }
+        }
         Ok(())
     }
 
@@ -329,9 +405,8 @@ impl State<'_> {
             .collect();
         for m in stale {
             self.write(m)?;
-            self.open.remove(&m);
         }
-        Ok(())
+        self.drain(None)
     }
 }
 
@@ -435,101 +510,143 @@ pub fn link(
             let _ = std::fs::remove_file(e.path());
         }
     }
-    let mut state = State {
-        store,
-        generation: manifest.generation + 1,
-        files: manifest
-            .partitions
-            .iter()
-            .map(|p| {
-                let (y, m) = (
-                    p.month[..4].parse::<i32>().unwrap_or(0),
-                    p.month[5..].parse::<i32>().unwrap_or(1),
-                );
-                (y * 12 + m - 1, p.clone())
-            })
-            .collect(),
-        manifest,
-        open: BTreeMap::new(),
-        strings: Strings::default(),
-        schema_ids: analyte_ids,
-        tag_names,
-        keep_area: opts.keep_area,
-        written_this_run: HashSet::new(),
-    };
-    let mut known: HashSet<String> = state
-        .manifest
-        .ledger
-        .iter()
-        .map(|l| l.sha256.clone())
-        .collect();
-    let mut results = Vec::new();
-    let mut hashed = 0;
+    // Three stages overlap: worker threads parse the next files, this thread merges, and a writer
+    // thread writes partitions that are no longer touched. Channels are bounded so memory is too.
     let chunk = rayon::current_num_threads().max(1);
-    let mut seq = 0usize;
-    for group in files.chunks(chunk) {
-        let parsed: Vec<Result<Parsed, LinkError>> = group
-            .par_iter()
-            .map(|p| parse_file(p, &source, inputs, &site, opts.keep_area))
-            .collect();
-        for p in parsed {
-            let p = p?;
-            seq += 1;
-            if !known.insert(p.sha256.clone()) {
-                let r = FileResult {
-                    file: p.path.clone(),
-                    skipped: true,
-                    accounting: Accounting::default(),
-                };
-                on_file(&r);
-                results.push(r);
-                continue;
+    std::thread::scope(|scope| {
+        let (parsed_tx, parsed_rx) =
+            std::sync::mpsc::sync_channel::<Result<Parsed, LinkError>>(chunk);
+        let source = &source;
+        let site = &site;
+        scope.spawn(move || {
+            for group in files.chunks(chunk) {
+                let parsed: Vec<Result<Parsed, LinkError>> = group
+                    .par_iter()
+                    .map(|p| parse_file(p, source, inputs, site, opts.keep_area))
+                    .collect();
+                for p in parsed {
+                    if parsed_tx.send(p).is_err() {
+                        return;
+                    }
+                }
             }
-            hashed = hashed.max(p.hashed);
-            let acc = merge_file(&mut state, p, seq, &opts.quarantine, inputs)?;
-            on_file(&acc);
-            results.push(acc);
-            state.evict(seq)?;
-        }
-    }
-    let changed = results.iter().any(|r| !r.skipped);
-    if changed {
-        let months: Vec<i32> = state.open.keys().copied().collect();
-        for m in months {
-            state.write(m)?;
-        }
-        let old: Vec<String> = state
+        });
+        let (jobs_tx, jobs_rx) = std::sync::mpsc::sync_channel::<WriteJob>(2);
+        let (done_tx, done_rx) = std::sync::mpsc::channel();
+        scope.spawn(move || {
+            for job in jobs_rx {
+                if done_tx.send(job.run()).is_err() {
+                    return;
+                }
+            }
+        });
+        let mut state = State {
+            store,
+            generation: manifest.generation + 1,
+            files: manifest
+                .partitions
+                .iter()
+                .map(|p| {
+                    let (y, m) = (
+                        p.month[..4].parse::<i32>().unwrap_or(0),
+                        p.month[5..].parse::<i32>().unwrap_or(1),
+                    );
+                    (y * 12 + m - 1, p.clone())
+                })
+                .collect(),
+            manifest,
+            open: BTreeMap::new(),
+            strings: Strings::default(),
+            schema_ids: analyte_ids,
+            tag_names,
+            keep_area: opts.keep_area,
+            jobs: Some(jobs_tx),
+            done: done_rx,
+            pending: HashSet::new(),
+        };
+        let mut known: HashSet<String> = state
             .manifest
-            .partitions
+            .ledger
             .iter()
-            .map(|p| p.file.clone())
+            .map(|l| l.sha256.clone())
             .collect();
-        let mut m = state.manifest.clone();
-        m.generation = state.generation;
-        m.tool_version = env!("CARGO_PKG_VERSION").to_string();
-        m.partitions = state.files.values().cloned().collect();
-        m.current_rows = m.partitions.iter().map(|p| p.current).sum();
-        let t = &m.totals;
-        if t.rows != m.current_rows + t.superseded + t.quarantined + t.duplicate + t.cancelled {
-            return Err(LinkError::Accounting(format!(
-                "rows {} != current {} + superseded {} + quarantined {} + duplicate {} + cancelled {}",
-                t.rows, m.current_rows, t.superseded, t.quarantined, t.duplicate, t.cancelled
-            )));
-        }
-        m.save(store)?;
-        let now: HashSet<&String> = m.partitions.iter().map(|p| &p.file).collect();
-        for f in old {
-            if !now.contains(&f) {
-                let _ = std::fs::remove_file(store.join(f));
+        let mut results = Vec::new();
+        let mut hashed = 0;
+        let mut seq = 0usize;
+        let profile = std::env::var_os("SLUICE_PROFILE").is_some();
+        let (mut t_wait, mut t_merge, mut t_evict) = (0.0, 0.0, 0.0);
+        {
+            let mut waited = std::time::Instant::now();
+            for p in parsed_rx {
+                t_wait += waited.elapsed().as_secs_f64();
+                let p = p?;
+                seq += 1;
+                if !known.insert(p.sha256.clone()) {
+                    let r = FileResult {
+                        file: p.path.clone(),
+                        skipped: true,
+                        accounting: Accounting::default(),
+                    };
+                    on_file(&r);
+                    results.push(r);
+                    waited = std::time::Instant::now();
+                    continue;
+                }
+                hashed = hashed.max(p.hashed);
+                let t1 = std::time::Instant::now();
+                let acc = merge_file(&mut state, p, seq, &opts.quarantine, inputs)?;
+                t_merge += t1.elapsed().as_secs_f64();
+                on_file(&acc);
+                results.push(acc);
+                let t2 = std::time::Instant::now();
+                state.evict(seq)?;
+                t_evict += t2.elapsed().as_secs_f64();
+                waited = std::time::Instant::now();
             }
         }
-        state.manifest = m;
-    }
-    Ok(Report {
-        files: results,
-        totals: state.manifest.totals.clone(),
-        current_rows: state.manifest.current_rows,
-        distinct_patients_hashed: hashed,
+        let changed = results.iter().any(|r| !r.skipped);
+        let t3 = std::time::Instant::now();
+        state.finish()?;
+        if profile {
+            eprintln!(
+                "profile: waiting for parsed files {t_wait:.2}s, merging {t_merge:.2}s, evicting {t_evict:.2}s, final writes {:.2}s",
+                t3.elapsed().as_secs_f64()
+            );
+        }
+        if changed {
+            let old: Vec<String> = state
+                .manifest
+                .partitions
+                .iter()
+                .map(|p| p.file.clone())
+                .collect();
+            let mut m = state.manifest.clone();
+            m.generation = state.generation;
+            m.tool_version = env!("CARGO_PKG_VERSION").to_string();
+            m.partitions = state.files.values().cloned().collect();
+            m.current_rows = m.partitions.iter().map(|p| p.current).sum();
+            let t = &m.totals;
+            if t.rows != m.current_rows + t.superseded + t.quarantined + t.duplicate + t.cancelled {
+                return Err(LinkError::Accounting(format!(
+                    "rows {} != current {} + superseded {} + quarantined {} + duplicate {} + cancelled {}",
+                    t.rows, m.current_rows, t.superseded, t.quarantined, t.duplicate, t.cancelled
+                )));
+            }
+            m.save(store)?;
+            let now: HashSet<&String> = m.partitions.iter().map(|p| &p.file).collect();
+            for f in old {
+                if !now.contains(&f) {
+                    let _ = std::fs::remove_file(store.join(f));
+                }
+            }
+            state.manifest = m;
+        }
+        Ok(Report {
+            files: results,
+            totals: state.manifest.totals.clone(),
+            current_rows: state.manifest.current_rows,
+            distinct_patients_hashed: hashed,
+        })
     })
 }
 

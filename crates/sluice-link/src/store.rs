@@ -522,13 +522,18 @@ pub fn write_partition(
         path: tmp.clone(),
         source,
     })?;
-    let mut w = std::io::BufWriter::new(file);
+    // Hash while writing rather than reading the file back.
+    let mut w = HashingWriter {
+        inner: std::io::BufWriter::new(file),
+        hasher: <sha2::Sha256 as sha2::Digest>::new(),
+    };
     ParquetWriter::new(&mut w)
         .with_compression(ParquetCompression::Zstd(None))
         .with_key_value_metadata(Some(KeyValueMetadata::from_static(metadata)))
         .finish(&mut df)
         .map_err(pe(path))?;
-    let file = w.into_inner().map_err(|e| StoreError::Io {
+    let sha = hex::encode(sha2::Digest::finalize(w.hasher));
+    let file = w.inner.into_inner().map_err(|e| StoreError::Io {
         path: tmp.clone(),
         source: e.into_error(),
     })?;
@@ -541,9 +546,24 @@ pub fn write_partition(
         path: path.to_path_buf(),
         source,
     })?;
-    let sha = sha256_file(path)?;
     let current = rows.iter().filter(|r| r.current).count() as u64;
     Ok((rows.len() as u64, current, sha))
+}
+
+struct HashingWriter<W> {
+    inner: W,
+    hasher: sha2::Sha256,
+}
+
+impl<W: std::io::Write> std::io::Write for HashingWriter<W> {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        let n = self.inner.write(buf)?;
+        sha2::Digest::update(&mut self.hasher, &buf[..n]);
+        Ok(n)
+    }
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.inner.flush()
+    }
 }
 
 pub fn sha256_file(path: &Path) -> Result<String, StoreError> {
