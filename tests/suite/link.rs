@@ -546,3 +546,79 @@ fn bad_files_and_keys_are_refused_with_file_line_and_field() {
         .to_string();
     assert!(e.contains("fingerprint") && e.contains("store"), "{e}");
 }
+
+#[test]
+fn units_are_converted_or_the_row_quarantined() {
+    use polars::prelude::*;
+    let dir = tempfile::tempdir().unwrap();
+    // The demo profile, plus a site that reports creatinine in mg/dL.
+    let text = std::fs::read_to_string(common::policies().join("profiles/quillmere.toml"))
+        .unwrap()
+        .replace(
+            "\"umol/L\" = \"umol/L\"",
+            "\"umol/L\" = \"umol/L\"\n\"mg/dL\" = \"mg/dL\"",
+        );
+    let profile_path = dir.path().join("mgdl.toml");
+    std::fs::write(&profile_path, text).unwrap();
+    let profile = sluice_policy::Profile::load(&profile_path).unwrap();
+    let header = "NHS_NUMBER,HOSP_NO,DOB,SEX,POSTCODE,GP_CODE,SPECIMEN_NO,COLLECTED,LOCATION,CLINICAL_DETAILS,TEST_CODE,RESULT,UNITS,RESULT_STATUS,REPORTED";
+    let row = |spec: &str, code: &str, value: &str, unit: &str| {
+        format!(
+            "9434765919,QM1,1960-05-01,F,QV1 1AA,QP001,{spec},2024-03-01 09:00,GPR,,{code},{value},{unit},F,2024-03-01 12:00"
+        )
+    };
+    let csv = [
+        header.to_string(),
+        row("S1", "CREA", "1.00", "mg/dL"), // 88.42 µmol/L
+        row("S1", "NA", "140", "mg/dL"),    // sodium does not accept mg/dL
+        row("S2", "CREA", "<20", "umol/L"), // a qualified bound
+    ]
+    .join("\n");
+    let f = dir.path().join("x.csv");
+    std::fs::write(&f, csv + "\n").unwrap();
+    let analytes = common::analytes();
+    let tags = TagDictionary::load(&common::policies().join("tags/dmard.toml")).unwrap();
+    let key = Key::from_bytes([3u8; 32], "t");
+    let store = dir.path().join("store");
+    let r = sluice_link::link(
+        &sluice_link::Inputs {
+            profile: &profile,
+            analytes: &analytes,
+            tags: &tags,
+            key: &key,
+            geo: None,
+        },
+        &sluice_link::Options {
+            store: store.clone(),
+            quarantine: dir.path().join("q"),
+            keep_area: false,
+        },
+        &[f],
+        |_| {},
+    )
+    .unwrap();
+    let a = &r.files[0].accounting;
+    assert_eq!((a.rows, a.stored, a.quarantined), (3, 2, 1));
+    let q = std::fs::read_to_string(walk(&dir.path().join("q"))[0].clone()).unwrap();
+    assert!(
+        q.contains("unit") && q.contains("not accepted for sodium"),
+        "{q}"
+    );
+    let part = walk(&store.join("results"))[0].clone();
+    let df = ParquetReader::new(std::fs::File::open(part).unwrap())
+        .finish()
+        .unwrap();
+    let mut values: Vec<(f64, Option<String>)> = df
+        .column("value")
+        .unwrap()
+        .f64()
+        .unwrap()
+        .iter()
+        .zip(df.column("qualifier").unwrap().str().unwrap().iter())
+        .map(|(v, q)| (v.unwrap(), q.map(str::to_string)))
+        .collect();
+    values.sort_by(|a, b| a.0.total_cmp(&b.0));
+    // 1 mg/dL creatinine = 88.42 µmol/L (molar mass 113.12 g/mol).
+    assert_eq!(values[0], (20.0, Some("<".to_string())));
+    assert!((values[1].0 - 88.42).abs() < 1e-9 && values[1].1.is_none());
+}

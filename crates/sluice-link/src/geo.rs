@@ -195,3 +195,16 @@ mod tests {
         assert_eq!(outward("X"), None);
     }
 }
+
+#[cfg(test)]
+mod distance_tests {
+    use super::*;
+
+    #[test]
+    fn one_degree_of_latitude() {
+        // Computed: one degree of a great circle is 2πR/360 = 111.19508 km for R = 6371.0088 km.
+        let d = haversine_km((54.0, 2.0), (55.0, 2.0));
+        assert!((d - 111.195_08).abs() < 1e-4, "{d}");
+        assert_eq!(haversine_km((54.9, 2.6), (54.9, 2.6)), 0.0);
+    }
+}

@@ -100,6 +100,8 @@ struct Parsed {
     rows_read: u64,
     strings: Strings,
     hashed: usize,
+    /// Already in the store's ledger: not parsed at all.
+    known: bool,
 }
 
 fn civil(day: i64) -> (i32, u32, u32) {
@@ -125,12 +127,31 @@ fn parse_file(
     inputs: &Inputs<'_>,
     site: &str,
     keep_area: bool,
+    ledger: &HashSet<String>,
 ) -> Result<Parsed, LinkError> {
     let bytes = std::fs::read(path).map_err(|source| LinkError::Io {
         path: path.to_path_buf(),
         source,
     })?;
     let sha256 = hex::encode(Sha256::digest(&bytes));
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().to_string())
+        .unwrap_or_default();
+    if ledger.contains(&sha256) {
+        return Ok(Parsed {
+            path: path.to_path_buf(),
+            name,
+            sha256,
+            text: String::new(),
+            rows: Vec::new(),
+            quarantined: Vec::new(),
+            rows_read: 0,
+            strings: Strings::default(),
+            hashed: 0,
+            known: true,
+        });
+    }
     let text = sluice_source::decode(path, bytes, inputs.profile.format.encoding)?;
     let mut pseudo = Pseudonymiser::new(inputs.key, site);
     let mut tagger = inputs.tags.clone();
@@ -220,10 +241,7 @@ fn parse_file(
     let mut quarantined = report.quarantined;
     quarantined.extend(extra_q);
     Ok(Parsed {
-        name: path
-            .file_name()
-            .map(|n| n.to_string_lossy().to_string())
-            .unwrap_or_default(),
+        name,
         path: path.to_path_buf(),
         sha256,
         text,
@@ -232,6 +250,7 @@ fn parse_file(
         rows_read: report.rows_read,
         strings,
         hashed: pseudo.distinct(),
+        known: false,
     })
 }
 
@@ -513,6 +532,8 @@ pub fn link(
     // Three stages overlap: worker threads parse the next files, this thread merges, and a writer
     // thread writes partitions that are no longer touched. Channels are bounded so memory is too.
     let chunk = rayon::current_num_threads().max(1);
+    let ledger: HashSet<String> = manifest.ledger.iter().map(|l| l.sha256.clone()).collect();
+    let ledger = &ledger;
     std::thread::scope(|scope| {
         let (parsed_tx, parsed_rx) =
             std::sync::mpsc::sync_channel::<Result<Parsed, LinkError>>(chunk);
@@ -522,7 +543,7 @@ pub fn link(
             for group in files.chunks(chunk) {
                 let parsed: Vec<Result<Parsed, LinkError>> = group
                     .par_iter()
-                    .map(|p| parse_file(p, source, inputs, site, opts.keep_area))
+                    .map(|p| parse_file(p, source, inputs, site, opts.keep_area, ledger))
                     .collect();
                 for p in parsed {
                     if parsed_tx.send(p).is_err() {
@@ -581,7 +602,7 @@ pub fn link(
                 t_wait += waited.elapsed().as_secs_f64();
                 let p = p?;
                 seq += 1;
-                if !known.insert(p.sha256.clone()) {
+                if p.known || !known.insert(p.sha256.clone()) {
                     let r = FileResult {
                         file: p.path.clone(),
                         skipped: true,
