@@ -159,17 +159,27 @@ fn parse_file(
     let mut rows = Vec::new();
     let mut extra_q = Vec::new();
     let mut last_specimen = (String::new(), 0u64);
+    let mut last_patient = (None::<[u8; 10]>, 0u64);
+    let mut last_notes = (String::new(), 0u64);
+    let mut last_practice = (String::new(), u32::MAX);
     let mut last_geo = (String::new(), String::new(), None::<f32>);
     let report = source.read_text(path, &text, |r: sluice_source::Row<'_>| {
+        // Consecutive rows are mostly one specimen of one patient: reuse what the last row found.
         let patient = match r.patient {
+            PatientRef::Nhs(d) if last_patient.0 == Some(d) => last_patient.1,
             PatientRef::Nhs(d) => {
                 let mut buf = [0u8; 10];
                 for (b, x) in buf.iter_mut().zip(d) {
                     *b = b'0' + x;
                 }
-                pseudo.get(Kind::Patient, std::str::from_utf8(&buf).expect("digits"))
+                let p = pseudo.get(Kind::Patient, std::str::from_utf8(&buf).expect("digits"));
+                last_patient = (Some(d), p);
+                p
             }
-            PatientRef::Local(id) => pseudo.get(Kind::LocalPatient, id),
+            PatientRef::Local(id) => {
+                last_patient.0 = None;
+                pseudo.get(Kind::LocalPatient, id)
+            }
         };
         if last_specimen.0 != r.specimen {
             last_specimen = (
@@ -225,12 +235,18 @@ fn parse_file(
             row.distance_km = last_geo.2;
         }
         if !r.practice.is_empty() {
-            row.practice = strings.intern(r.practice);
+            if last_practice.0 != r.practice {
+                last_practice = (r.practice.to_string(), strings.intern(r.practice));
+            }
+            row.practice = last_practice.1;
         }
         if keep_area && let Some(a) = geo::outward(r.postcode) {
             row.area = strings.intern(&a);
         }
-        row.tags = tagger.tags(r.notes);
+        if last_notes.0 != r.notes || last_notes.0.is_empty() {
+            last_notes = (r.notes.to_string(), tagger.tags(r.notes));
+        }
+        row.tags = last_notes.1;
         row.source_line = r.line as u32;
         rows.push(Incoming {
             row,
@@ -285,14 +301,19 @@ struct WriteJob {
 }
 
 impl WriteJob {
-    fn run(self) -> Result<(i32, PartitionEntry), StoreError> {
+    fn run(mut self) -> Result<(i32, PartitionEntry), StoreError> {
         let schema = Schema {
             analyte_ids: &self.analyte_ids,
             tag_names: &self.tag_names,
             keep_area: self.keep_area,
         };
-        let (rows, current, sha256) =
-            store::write_partition(&self.path, &self.rows, &self.strings, &schema, self.meta)?;
+        let (rows, current, sha256) = store::write_partition(
+            &self.path,
+            &mut self.rows,
+            &self.strings,
+            &schema,
+            self.meta,
+        )?;
         Ok((
             self.month,
             PartitionEntry {
@@ -692,13 +713,18 @@ fn merge_file(
         ..Default::default()
     };
     let mut quarantined = p.quarantined;
+    let mut last_day = (i64::MIN, 0);
     for inc in p.rows {
         let mut row = inc.row;
         row.text = map(row.text);
         row.practice = map(row.practice);
         row.area = map(row.area);
         row.source_file = file_index;
-        let month = store::month_of(row.collected);
+        let day = row.collected.div_euclid(1440);
+        if day != last_day.0 {
+            last_day = (day, store::month_of(row.collected));
+        }
+        let month = last_day.1;
         let part = state.partition(month)?;
         part.last_touched = seq;
         match part.merge(row) {

@@ -144,10 +144,35 @@ pub enum Outcome {
     PatientConflict,
 }
 
+/// Hasher for the version index. Its keys are keyed-HMAC pseudonyms, already uniformly
+/// distributed and unguessable without the key, so mixing the analyte into them is enough; the
+/// default SipHash would only cost time on every row.
+#[derive(Default, Clone, Copy)]
+pub struct PseudonymHasher(u64);
+
+impl std::hash::Hasher for PseudonymHasher {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+    fn write(&mut self, bytes: &[u8]) {
+        for &b in bytes {
+            self.0 = (self.0.rotate_left(8) ^ u64::from(b)).wrapping_mul(0x9E37_79B9_7F4A_7C15);
+        }
+    }
+    fn write_u64(&mut self, v: u64) {
+        self.0 ^= v;
+    }
+    fn write_u16(&mut self, v: u16) {
+        self.0 = (self.0 ^ u64::from(v)).wrapping_mul(0x9E37_79B9_7F4A_7C15);
+    }
+}
+
+type Index = HashMap<(u64, u16), u32, std::hash::BuildHasherDefault<PseudonymHasher>>;
+
 #[derive(Default)]
 pub struct Partition {
     pub rows: Vec<StoreRow>,
-    index: HashMap<(u64, u16), u32>,
+    index: Index,
     pub dirty: bool,
     pub last_touched: usize,
 }
@@ -165,7 +190,7 @@ impl Partition {
                 r.source_line,
             )
         });
-        let mut index = HashMap::with_capacity(rows.len());
+        let mut index = Index::with_capacity_and_hasher(rows.len(), Default::default());
         for (i, r) in rows.iter_mut().enumerate() {
             if let Some(prev) = index.insert((r.specimen, r.analyte), i as u32) {
                 r.prev = prev;
@@ -392,6 +417,20 @@ pub struct Schema<'a> {
     pub keep_area: bool,
 }
 
+const STATUSES: [Status; 3] = [Status::Final, Status::Amended, Status::Cancelled];
+
+/// A string column of few distinct values, gathered from a dictionary by code: copying short
+/// string views is much cheaper than building every string anew.
+fn dict_column(
+    name: &str,
+    dict: &[&str],
+    codes: impl Iterator<Item = Option<IdxSize>>,
+) -> PolarsResult<Column> {
+    let d = Series::new("".into(), dict);
+    let idx: IdxCa = codes.collect();
+    Ok(d.take(&idx)?.with_name(name.into()).into_column())
+}
+
 fn pe(path: &Path) -> impl Fn(PolarsError) -> StoreError + '_ {
     move |source| StoreError::Polars {
         path: path.to_path_buf(),
@@ -403,14 +442,15 @@ fn pe(path: &Path) -> impl Fn(PolarsError) -> StoreError + '_ {
 /// analyte — the order studies read in. Returns (rows, current rows, SHA-256 of the file).
 pub fn write_partition(
     path: &Path,
-    rows: &[StoreRow],
+    rows: &mut [StoreRow],
     strings: &Strings,
     schema: &Schema<'_>,
     metadata: Vec<(String, String)>,
 ) -> Result<(u64, u64, String), StoreError> {
-    let mut order: Vec<u32> = (0..rows.len() as u32).collect();
-    order.sort_by_key(|&i| {
-        let r = &rows[i as usize];
+    let t0 = std::time::Instant::now();
+    // Sorting the rows themselves (not an index into them) lets every column below be built by
+    // one sequential pass; the key is unique, so the unstable sort is still deterministic.
+    rows.sort_unstable_by_key(|r| {
         (
             r.patient,
             r.collected,
@@ -421,7 +461,8 @@ pub fn write_partition(
             r.source_line,
         )
     });
-    let it = || order.iter().map(|&i| &rows[i as usize]);
+    let it = || rows.iter();
+    let t_sort = t0.elapsed().as_secs_f64();
     let minutes_ms = |m: i64| m * 60_000;
     let dt = DataType::Datetime(TimeUnit::Milliseconds, None);
     let mut cols: Vec<Column> = vec![
@@ -446,15 +487,22 @@ pub fn write_partition(
         )
         .cast(&dt)
         .map_err(pe(path))?,
-        Column::new(
-            "setting".into(),
-            it().map(|r| r.setting.as_str()).collect::<Vec<&str>>(),
-        ),
-        Column::new(
-            "analyte".into(),
-            it().map(|r| schema.analyte_ids[r.analyte as usize].as_str())
-                .collect::<Vec<&str>>(),
-        ),
+        dict_column(
+            "setting",
+            &Setting::ALL.map(Setting::as_str),
+            it().map(|r| Some(r.setting.code() as IdxSize)),
+        )
+        .map_err(pe(path))?,
+        dict_column(
+            "analyte",
+            &schema
+                .analyte_ids
+                .iter()
+                .map(String::as_str)
+                .collect::<Vec<_>>(),
+            it().map(|r| Some(r.analyte as IdxSize)),
+        )
+        .map_err(pe(path))?,
         Column::new(
             "value".into(),
             it().map(|r| r.value).collect::<Vec<Option<f64>>>(),
@@ -469,10 +517,12 @@ pub fn write_partition(
             it().map(|r| strings.get(r.text))
                 .collect::<Vec<Option<&str>>>(),
         ),
-        Column::new(
-            "status".into(),
-            it().map(|r| r.status.as_str()).collect::<Vec<&str>>(),
-        ),
+        dict_column(
+            "status",
+            &STATUSES.map(Status::as_str),
+            it().map(|r| Some(r.status as IdxSize)),
+        )
+        .map_err(pe(path))?,
         Column::new(
             "current".into(),
             it().map(|r| r.current).collect::<Vec<bool>>(),
@@ -481,19 +531,26 @@ pub fn write_partition(
             "age_years".into(),
             it().map(|r| r.age).collect::<Vec<Option<u8>>>(),
         ),
-        Column::new(
-            "sex".into(),
-            it().map(|r| r.sex.as_str()).collect::<Vec<&str>>(),
-        ),
+        dict_column(
+            "sex",
+            &Sex::ALL.map(Sex::as_str),
+            it().map(|r| Some(r.sex.code() as IdxSize)),
+        )
+        .map_err(pe(path))?,
         Column::new(
             "distance_km".into(),
             it().map(|r| r.distance_km).collect::<Vec<Option<f32>>>(),
         ),
-        Column::new(
-            "practice_code".into(),
-            it().map(|r| strings.get(r.practice))
-                .collect::<Vec<Option<&str>>>(),
-        ),
+        dict_column(
+            "practice_code",
+            &strings
+                .values
+                .iter()
+                .map(String::as_str)
+                .collect::<Vec<_>>(),
+            it().map(|r| (r.practice != NONE).then_some(r.practice as IdxSize)),
+        )
+        .map_err(pe(path))?,
     ];
     if schema.keep_area {
         cols.push(Column::new(
@@ -517,6 +574,7 @@ pub fn write_partition(
         it().map(|r| r.source_line).collect::<Vec<u32>>(),
     ));
     let mut df = DataFrame::new(rows.len(), cols).map_err(pe(path))?;
+    let t1 = t0.elapsed().as_secs_f64();
     let tmp = path.with_extension("parquet.tmp");
     let file = std::fs::File::create(&tmp).map_err(|source| StoreError::Io {
         path: tmp.clone(),
@@ -533,6 +591,13 @@ pub fn write_partition(
         .finish(&mut df)
         .map_err(pe(path))?;
     let sha = hex::encode(sha2::Digest::finalize(w.hasher));
+    if std::env::var_os("SLUICE_PROFILE").is_some() {
+        eprintln!(
+            "write {}: sort {t_sort:.3}s build {t1:.3}s total {:.3}s",
+            path.display(),
+            t0.elapsed().as_secs_f64()
+        );
+    }
     let file = w.inner.into_inner().map_err(|e| StoreError::Io {
         path: tmp.clone(),
         source: e.into_error(),

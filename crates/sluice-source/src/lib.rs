@@ -14,7 +14,6 @@ use sha2::{Digest, Sha256};
 use sluice_policy::nhs::{self, NhsProblem};
 use sluice_policy::profile::Encoding;
 use sluice_policy::{AnalyteTable, Profile, Setting, Sex, Status};
-use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
 #[derive(Debug, thiserror::Error)]
@@ -171,16 +170,41 @@ const FIELD_NAMES: [&str; NF] = [
     "status",
 ];
 
+/// A code map searched by a linear scan. Site vocabularies have a few to a few dozen codes, for
+/// which comparing lengths and bytes beats hashing the key on every row.
+struct SmallMap<'p, T> {
+    entries: Vec<(&'p str, T)>,
+}
+
+impl<'p, T: Copy> SmallMap<'p, T> {
+    fn new(it: impl IntoIterator<Item = (&'p str, T)>) -> Self {
+        Self {
+            entries: it.into_iter().collect(),
+        }
+    }
+    fn get(&self, k: &str) -> Option<T> {
+        self.entries
+            .iter()
+            .find(|(key, _)| key.len() == k.len() && *key == k)
+            .map(|(_, v)| *v)
+    }
+}
+
 /// A profile prepared for reading: formats compiled, code maps resolved to indices.
 pub struct Source<'p> {
-    profile: &'p Profile,
     date: DateFormat,
     datetime: DateFormat,
-    analyte_index: HashMap<&'p str, u16>,
+    encoding: Encoding,
+    format: &'p sluice_policy::profile::Format,
+    columns: &'p sluice_policy::profile::Columns,
+    setting: SmallMap<'p, Setting>,
+    status: SmallMap<'p, Status>,
+    sex: SmallMap<'p, Sex>,
+    analyte_index: SmallMap<'p, u16>,
     /// Per (local unit text) the UCUM unit.
-    units: HashMap<&'p str, &'p str>,
-    /// factor[analyte][ucum] → conversion to the canonical unit.
-    factors: Vec<HashMap<String, f64>>,
+    units: SmallMap<'p, &'p str>,
+    /// factor[analyte] = [(ucum, factor)]: conversions to the canonical unit.
+    factors: Vec<Vec<(String, f64)>>,
     analyte_ids: Vec<String>,
 }
 
@@ -198,41 +222,34 @@ impl<'p> Source<'p> {
             .check_against(analytes)
             .map_err(|e| err(e.to_string()))?;
         let analyte_ids: Vec<String> = analytes.ids().into_iter().map(str::to_string).collect();
-        let analyte_index = profile
-            .codes
-            .analyte
-            .iter()
-            .map(|(local, id)| {
-                let i = analyte_ids
-                    .iter()
-                    .position(|a| a == id)
-                    .expect("checked above");
-                (local.as_str(), i as u16)
-            })
-            .collect();
+        let analyte_index = SmallMap::new(profile.codes.analyte.iter().map(|(local, id)| {
+            let i = analyte_ids
+                .iter()
+                .position(|a| a == id)
+                .expect("checked above");
+            (local.as_str(), i as u16)
+        }));
         let factors = analyte_ids
             .iter()
             .map(|id| {
                 let a = analytes.get(id).expect("listed");
-                let mut m = HashMap::new();
-                m.insert(a.unit.clone(), 1.0);
-                for c in &a.convert {
-                    m.insert(c.from.clone(), c.factor);
-                }
+                let mut m = vec![(a.unit.clone(), 1.0)];
+                m.extend(a.convert.iter().map(|c| (c.from.clone(), c.factor)));
                 m
             })
             .collect();
+        let codes = &profile.codes;
         Ok(Self {
-            profile,
             date,
             datetime,
+            encoding: profile.format.encoding,
+            format: &profile.format,
+            columns: &profile.columns,
+            setting: SmallMap::new(codes.setting.iter().map(|(k, v)| (k.as_str(), *v))),
+            status: SmallMap::new(codes.status.iter().map(|(k, v)| (k.as_str(), *v))),
+            sex: SmallMap::new(codes.sex.iter().map(|(k, v)| (k.as_str(), *v))),
             analyte_index,
-            units: profile
-                .codes
-                .unit
-                .iter()
-                .map(|(k, v)| (k.as_str(), v.as_str()))
-                .collect(),
+            units: SmallMap::new(codes.unit.iter().map(|(k, v)| (k.as_str(), v.as_str()))),
             factors,
             analyte_ids,
         })
@@ -258,7 +275,7 @@ impl<'p> Source<'p> {
             source,
         })?;
         let sha256 = hex::encode(Sha256::digest(&bytes));
-        let text = decode(path, bytes, self.profile.format.encoding)?;
+        let text = decode(path, bytes, self.encoding)?;
         let report = self.read_text(path, &text, &mut each)?;
         Ok((report, sha256))
     }
@@ -270,7 +287,7 @@ impl<'p> Source<'p> {
         text: &str,
         mut each: impl FnMut(Row<'_>),
     ) -> Result<FileReport, SourceError> {
-        let f = &self.profile.format;
+        let f = self.format;
         let data = text.strip_prefix('\u{feff}').unwrap_or(text).as_bytes();
         let offset = text.len() - data.len();
         let mut rdr = csv::ReaderBuilder::new()
@@ -348,7 +365,7 @@ impl<'p> Source<'p> {
         names: &[String],
     ) -> Result<[Option<usize>; NF], SourceError> {
         let mut cols = [None; NF];
-        for (field, col) in self.profile.columns.mapped() {
+        for (field, col) in self.columns.mapped() {
             let k = FIELD_NAMES
                 .iter()
                 .position(|n| *n == field)
@@ -370,7 +387,7 @@ impl<'p> Source<'p> {
 
     fn columns_from_positions(&self) -> [Option<usize>; NF] {
         let mut cols = [None; NF];
-        for (field, col) in self.profile.columns.mapped() {
+        for (field, col) in self.columns.mapped() {
             let k = FIELD_NAMES
                 .iter()
                 .position(|n| *n == field)
@@ -400,7 +417,6 @@ impl<'p> Source<'p> {
                 .unwrap_or("")
         };
         let name = |f: F| FIELD_NAMES[f as usize];
-        let codes = &self.profile.codes;
 
         let raw_nhs = get(F::Patient);
         let patient = match nhs::parse(raw_nhs) {
@@ -431,8 +447,7 @@ impl<'p> Source<'p> {
         let sex = if sex_raw.is_empty() {
             Sex::Unknown
         } else {
-            *codes
-                .sex
+            self.sex
                 .get(sex_raw)
                 .ok_or_else(|| (name(F::Sex), format!("unknown sex code {sex_raw:?}")))?
         };
@@ -461,19 +476,19 @@ impl<'p> Source<'p> {
             }
         };
         let set_raw = get(F::Setting).trim();
-        let setting = *codes.setting.get(set_raw).ok_or_else(|| {
+        let setting = self.setting.get(set_raw).ok_or_else(|| {
             (
                 name(F::Setting),
                 format!("unknown setting code {set_raw:?}"),
             )
         })?;
         let st_raw = get(F::Status).trim();
-        let status = *codes
+        let status = self
             .status
             .get(st_raw)
             .ok_or_else(|| (name(F::Status), format!("unknown status code {st_raw:?}")))?;
         let an_raw = get(F::Analyte).trim();
-        let analyte = *self
+        let analyte = self
             .analyte_index
             .get(an_raw)
             .ok_or_else(|| (name(F::Analyte), format!("unknown analyte code {an_raw:?}")))?;
@@ -491,15 +506,19 @@ impl<'p> Source<'p> {
                         .units
                         .get(u_raw)
                         .ok_or_else(|| (name(F::Unit), format!("unknown unit {u_raw:?}")))?;
-                    let factor = self.factors[analyte as usize].get(*ucum).ok_or_else(|| {
-                        (
-                            name(F::Unit),
-                            format!(
-                                "unit {ucum:?} is not accepted for {}",
-                                self.analyte_ids[analyte as usize]
-                            ),
-                        )
-                    })?;
+                    let factor = self.factors[analyte as usize]
+                        .iter()
+                        .find(|(u, _)| u == ucum)
+                        .map(|(_, f)| *f)
+                        .ok_or_else(|| {
+                            (
+                                name(F::Unit),
+                                format!(
+                                    "unit {ucum:?} is not accepted for {}",
+                                    self.analyte_ids[analyte as usize]
+                                ),
+                            )
+                        })?;
                     match v {
                         Value::Num(x) => Value::Num(x * factor),
                         Value::Qualified(q, x) => Value::Qualified(q, x * factor),
