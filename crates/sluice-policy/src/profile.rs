@@ -116,29 +116,80 @@ pub struct Columns {
 
 impl Columns {
     /// (canonical field, site column) for every field the profile maps, in a fixed order.
-    pub fn mapped(&self) -> Vec<(&'static str, &str)> {
+    pub fn mapped(&self) -> Vec<(Field, &str)> {
         let mut v = vec![
-            ("patient_id", self.patient_id.as_str()),
-            ("birth_date", self.birth_date.as_str()),
-            ("sex", self.sex.as_str()),
-            ("home_postcode", self.home_postcode.as_str()),
-            ("practice_code", self.practice_code.as_str()),
-            ("specimen_id", self.specimen_id.as_str()),
-            ("collected_at", self.collected_at.as_str()),
-            ("setting", self.setting.as_str()),
-            ("clinical_notes", self.clinical_notes.as_str()),
-            ("analyte", self.analyte.as_str()),
-            ("value", self.value.as_str()),
-            ("unit", self.unit.as_str()),
-            ("status", self.status.as_str()),
+            (Field::PatientId, self.patient_id.as_str()),
+            (Field::BirthDate, self.birth_date.as_str()),
+            (Field::Sex, self.sex.as_str()),
+            (Field::HomePostcode, self.home_postcode.as_str()),
+            (Field::PracticeCode, self.practice_code.as_str()),
+            (Field::SpecimenId, self.specimen_id.as_str()),
+            (Field::CollectedAt, self.collected_at.as_str()),
+            (Field::Setting, self.setting.as_str()),
+            (Field::ClinicalNotes, self.clinical_notes.as_str()),
+            (Field::Analyte, self.analyte.as_str()),
+            (Field::Value, self.value.as_str()),
+            (Field::Unit, self.unit.as_str()),
+            (Field::Status, self.status.as_str()),
         ];
         if let Some(c) = &self.local_patient_id {
-            v.insert(1, ("local_patient_id", c.as_str()));
+            v.insert(1, (Field::LocalPatientId, c.as_str()));
         }
         if let Some(c) = &self.reported_at {
-            v.push(("reported_at", c.as_str()));
+            v.push((Field::ReportedAt, c.as_str()));
         }
         v
+    }
+}
+
+/// The canonical fields an extract row carries, whatever a site calls its columns.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum Field {
+    PatientId,
+    LocalPatientId,
+    BirthDate,
+    Sex,
+    HomePostcode,
+    PracticeCode,
+    SpecimenId,
+    CollectedAt,
+    ReportedAt,
+    Setting,
+    ClinicalNotes,
+    Analyte,
+    Value,
+    Unit,
+    Status,
+}
+
+impl std::fmt::Display for Field {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+impl Field {
+    pub const COUNT: usize = 15;
+
+    /// The field's name as used in profiles (`[columns]` keys) and in messages.
+    pub fn name(self) -> &'static str {
+        match self {
+            Field::PatientId => "patient_id",
+            Field::LocalPatientId => "local_patient_id",
+            Field::BirthDate => "birth_date",
+            Field::Sex => "sex",
+            Field::HomePostcode => "home_postcode",
+            Field::PracticeCode => "practice_code",
+            Field::SpecimenId => "specimen_id",
+            Field::CollectedAt => "collected_at",
+            Field::ReportedAt => "reported_at",
+            Field::Setting => "setting",
+            Field::ClinicalNotes => "clinical_notes",
+            Field::Analyte => "analyte",
+            Field::Value => "value",
+            Field::Unit => "unit",
+            Field::Status => "status",
+        }
     }
 }
 

@@ -131,44 +131,8 @@ pub struct FileReport {
     pub quarantined: Vec<Quarantined>,
 }
 
-/// Canonical field order used for column lookups.
-#[derive(Clone, Copy)]
-enum F {
-    Patient,
-    Local,
-    Birth,
-    Sex,
-    Postcode,
-    Practice,
-    Specimen,
-    Collected,
-    Reported,
-    Setting,
-    Notes,
-    Analyte,
-    Value,
-    Unit,
-    Status,
-}
-const NF: usize = 15;
-
-const FIELD_NAMES: [&str; NF] = [
-    "patient_id",
-    "local_patient_id",
-    "birth_date",
-    "sex",
-    "home_postcode",
-    "practice_code",
-    "specimen_id",
-    "collected_at",
-    "reported_at",
-    "setting",
-    "clinical_notes",
-    "analyte",
-    "value",
-    "unit",
-    "status",
-];
+use sluice_policy::profile::Field as F;
+const NF: usize = F::COUNT;
 
 /// A code map searched by a linear scan. Site vocabularies have a few to a few dozen codes, for
 /// which comparing lengths and bytes beats hashing the key on every row.
@@ -296,20 +260,16 @@ impl<'p> Source<'p> {
             .has_headers(false)
             .flexible(true)
             .from_reader(data);
-        let mut rec = csv::ByteRecord::new();
+        // String records validate UTF-8 once per record rather than once per field.
+        let mut rec = csv::StringRecord::new();
         let cols = if f.header {
-            let more = rdr
-                .read_byte_record(&mut rec)
-                .map_err(|e| csv_err(path, &e))?;
+            let more = rdr.read_record(&mut rec).map_err(|e| csv_err(path, &e))?;
             if !more {
                 return Err(SourceError::Empty {
                     path: path.to_path_buf(),
                 });
             }
-            let names: Vec<String> = rec
-                .iter()
-                .map(|c| String::from_utf8_lossy(c).trim().to_string())
-                .collect();
+            let names: Vec<String> = rec.iter().map(|c| c.trim().to_string()).collect();
             self.columns_from_header(path, &names)?
         } else {
             self.columns_from_positions()
@@ -323,7 +283,7 @@ impl<'p> Source<'p> {
         let mut start = rdr.position().byte() as usize;
         loop {
             let line = rdr.position().line();
-            let more = match rdr.read_byte_record(&mut rec) {
+            let more = match rdr.read_record(&mut rec) {
                 Ok(m) => m,
                 Err(e) => return Err(csv_err(path, &e)),
             };
@@ -335,11 +295,7 @@ impl<'p> Source<'p> {
             let raw_start = start;
             start = end;
             // A blank line between records is not a record.
-            if rec.len() == 1
-                && rec
-                    .get(0)
-                    .is_some_and(|c| c.iter().all(|b| b.is_ascii_whitespace()))
-            {
+            if rec.len() == 1 && rec.get(0).is_some_and(|c| c.trim().is_empty()) {
                 continue;
             }
             report.rows_read += 1;
@@ -366,16 +322,12 @@ impl<'p> Source<'p> {
     ) -> Result<[Option<usize>; NF], SourceError> {
         let mut cols = [None; NF];
         for (field, col) in self.columns.mapped() {
-            let k = FIELD_NAMES
-                .iter()
-                .position(|n| *n == field)
-                .expect("known field");
             match names.iter().position(|n| n == col) {
-                Some(i) => cols[k] = Some(i),
+                Some(i) => cols[field as usize] = Some(i),
                 None => {
                     return Err(SourceError::MissingColumn {
                         path: path.to_path_buf(),
-                        field,
+                        field: field.name(),
                         column: col.to_string(),
                         found: names.join(", "),
                     });
@@ -388,11 +340,7 @@ impl<'p> Source<'p> {
     fn columns_from_positions(&self) -> [Option<usize>; NF] {
         let mut cols = [None; NF];
         for (field, col) in self.columns.mapped() {
-            let k = FIELD_NAMES
-                .iter()
-                .position(|n| *n == field)
-                .expect("known field");
-            cols[k] = col.parse::<usize>().ok().map(|p| p - 1);
+            cols[field as usize] = col.parse::<usize>().ok().map(|p| p - 1);
         }
         cols
     }
@@ -401,46 +349,39 @@ impl<'p> Source<'p> {
     fn row<'r>(
         &self,
         line: u64,
-        rec: &'r csv::ByteRecord,
+        rec: &'r csv::StringRecord,
         cols: &[Option<usize>; NF],
         width: usize,
     ) -> Result<Row<'r>, (&'static str, String)> {
         if rec.len() != width {
             return Err(("", format!("expected {width} fields, found {}", rec.len())));
         }
-        let get = |f: F| -> &'r str {
-            cols[f as usize]
-                .and_then(|i| rec.get(i))
-                // The whole file was checked as UTF-8 before splitting, and CSV unquoting keeps
-                // UTF-8 intact, so this cannot fail; an empty string is a safe fallback.
-                .map(|b| std::str::from_utf8(b).unwrap_or(""))
-                .unwrap_or("")
-        };
-        let name = |f: F| FIELD_NAMES[f as usize];
+        let get = |f: F| -> &'r str { cols[f as usize].and_then(|i| rec.get(i)).unwrap_or("") };
+        let name = |f: F| f.name();
 
-        let raw_nhs = get(F::Patient);
+        let raw_nhs = get(F::PatientId);
         let patient = match nhs::parse(raw_nhs) {
             Ok(d) => PatientRef::Nhs(d),
-            Err(NhsProblem::Blank) if cols[F::Local as usize].is_some() => {
-                let local = get(F::Local).trim();
+            Err(NhsProblem::Blank) if cols[F::LocalPatientId as usize].is_some() => {
+                let local = get(F::LocalPatientId).trim();
                 if local.is_empty() {
                     return Err((
-                        name(F::Patient),
+                        name(F::PatientId),
                         "blank NHS number and blank local identifier".into(),
                     ));
                 }
                 PatientRef::Local(local)
             }
-            Err(p) => return Err((name(F::Patient), p.as_str().to_string())),
+            Err(p) => return Err((name(F::PatientId), p.as_str().to_string())),
         };
-        let birth = get(F::Birth).trim();
+        let birth = get(F::BirthDate).trim();
         let birth_day = if birth.is_empty() {
             None
         } else {
             Some(
                 self.date
                     .parse(birth)
-                    .ok_or_else(|| (name(F::Birth), format!("cannot read date {birth:?}")))?,
+                    .ok_or_else(|| (name(F::BirthDate), format!("cannot read date {birth:?}")))?,
             )
         };
         let sex_raw = get(F::Sex).trim();
@@ -451,26 +392,26 @@ impl<'p> Source<'p> {
                 .get(sex_raw)
                 .ok_or_else(|| (name(F::Sex), format!("unknown sex code {sex_raw:?}")))?
         };
-        let specimen = get(F::Specimen).trim();
+        let specimen = get(F::SpecimenId).trim();
         if specimen.is_empty() {
-            return Err((name(F::Specimen), "blank specimen identifier".into()));
+            return Err((name(F::SpecimenId), "blank specimen identifier".into()));
         }
-        let coll = get(F::Collected);
+        let coll = get(F::CollectedAt);
         let collected = self.datetime.parse(coll).ok_or_else(|| {
             (
-                name(F::Collected),
+                name(F::CollectedAt),
                 format!("cannot read date-time {:?}", coll.trim()),
             )
         })?;
-        let reported = match cols[F::Reported as usize] {
+        let reported = match cols[F::ReportedAt as usize] {
             None => None,
             Some(_) => {
-                let r = get(F::Reported).trim();
+                let r = get(F::ReportedAt).trim();
                 if r.is_empty() {
                     None
                 } else {
                     Some(self.datetime.parse(r).ok_or_else(|| {
-                        (name(F::Reported), format!("cannot read date-time {r:?}"))
+                        (name(F::ReportedAt), format!("cannot read date-time {r:?}"))
                     })?)
                 }
             }
@@ -533,13 +474,13 @@ impl<'p> Source<'p> {
             patient,
             birth_day,
             sex,
-            postcode: get(F::Postcode).trim(),
-            practice: get(F::Practice).trim(),
+            postcode: get(F::HomePostcode).trim(),
+            practice: get(F::PracticeCode).trim(),
             specimen,
             collected,
             reported,
             setting,
-            notes: get(F::Notes),
+            notes: get(F::ClinicalNotes),
             analyte,
             value,
             status,

@@ -7,34 +7,15 @@ use crate::emit::{Fault, Row, Val, specimen_id};
 use crate::model::ANALYTES;
 use chrono::format::{Item, StrftimeItems};
 use chrono::{DateTime, NaiveDate, NaiveDateTime};
-use sluice_policy::profile::{Encoding, LineEnding};
+use sluice_policy::profile::{Encoding, Field, LineEnding};
 use sluice_policy::{AnalyteTable, Profile, Setting, Sex, Status};
 use std::fmt::Write as _;
 
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum Field {
-    PatientId,
-    LocalPatientId,
-    BirthDate,
-    Sex,
-    Postcode,
-    Practice,
-    Specimen,
-    Collected,
-    Reported,
-    Setting,
-    Notes,
-    Analyte,
-    Value,
-    Unit,
-    Status,
-    /// A column the profile does not map (written empty).
-    Unmapped,
-}
-
 pub struct Layout {
     pub header: Vec<String>,
-    pub fields: Vec<Field>,
+    /// Canonical field of each column; `None` for a column the profile does not map (written
+    /// empty).
+    pub fields: Vec<Option<Field>>,
     pub delimiter: u8,
     pub quote: u8,
     pub eol: &'static [u8],
@@ -62,28 +43,10 @@ impl Layout {
             message,
         };
         let mapped = profile.columns.mapped();
-        let field_of = |name: &str| match name {
-            "patient_id" => Field::PatientId,
-            "local_patient_id" => Field::LocalPatientId,
-            "birth_date" => Field::BirthDate,
-            "sex" => Field::Sex,
-            "home_postcode" => Field::Postcode,
-            "practice_code" => Field::Practice,
-            "specimen_id" => Field::Specimen,
-            "collected_at" => Field::Collected,
-            "reported_at" => Field::Reported,
-            "setting" => Field::Setting,
-            "clinical_notes" => Field::Notes,
-            "analyte" => Field::Analyte,
-            "value" => Field::Value,
-            "unit" => Field::Unit,
-            "status" => Field::Status,
-            _ => Field::Unmapped,
-        };
         let (header, fields) = if profile.format.header {
             (
                 mapped.iter().map(|(_, c)| c.to_string()).collect(),
-                mapped.iter().map(|(f, _)| field_of(f)).collect(),
+                mapped.iter().map(|(f, _)| Some(*f)).collect(),
             )
         } else {
             let width = mapped
@@ -91,9 +54,9 @@ impl Layout {
                 .map(|(_, c)| c.parse::<usize>().unwrap_or(0))
                 .max()
                 .unwrap_or(0);
-            let mut fields = vec![Field::Unmapped; width];
+            let mut fields = vec![None; width];
             for (f, c) in &mapped {
-                fields[c.parse::<usize>().unwrap_or(1) - 1] = field_of(f);
+                fields[c.parse::<usize>().unwrap_or(1) - 1] = Some(*f);
             }
             (Vec::new(), fields)
         };
@@ -228,7 +191,7 @@ impl Layout {
             }
             tmp.clear();
             match f {
-                Field::PatientId => match r.fault {
+                Some(Field::PatientId) => match r.fault {
                     Fault::BlankNhs | Fault::BlankIds => {}
                     _ => {
                         let mut d = p.nhs;
@@ -243,25 +206,28 @@ impl Layout {
                         }
                     }
                 },
-                Field::LocalPatientId => {
-                    if r.fault != Fault::BlankIds {
-                        let _ = write!(tmp, "QM{:07}", p.mrn);
-                    }
+                Some(Field::LocalPatientId) if r.fault != Fault::BlankIds => {
+                    let _ = write!(tmp, "QM{:07}", p.mrn);
                 }
-                Field::BirthDate => tmp = self.date(p.birth_day),
-                Field::Sex => tmp.push_str(&self.sex_codes[p.sex.code() as usize]),
-                Field::Postcode => tmp.push_str(&s.region.postcodes[p.postcode as usize].code),
-                Field::Practice => tmp.push_str(&s.region.practices[p.practice as usize].code),
-                Field::Specimen => tmp = specimen_id(r.specimen),
-                Field::Collected => {
+                Some(Field::LocalPatientId) => {}
+                Some(Field::BirthDate) => tmp = self.date(p.birth_day),
+                Some(Field::Sex) => tmp.push_str(&self.sex_codes[p.sex.code() as usize]),
+                Some(Field::HomePostcode) => {
+                    tmp.push_str(&s.region.postcodes[p.postcode as usize].code)
+                }
+                Some(Field::PracticeCode) => {
+                    tmp.push_str(&s.region.practices[p.practice as usize].code)
+                }
+                Some(Field::SpecimenId) => tmp = specimen_id(r.specimen),
+                Some(Field::CollectedAt) => {
                     if r.fault == Fault::BadDate {
                         tmp.push_str("00/00/0000 00:00");
                     } else {
                         tmp = self.datetime(r.collected);
                     }
                 }
-                Field::Reported => tmp = self.datetime(r.reported),
-                Field::Setting => {
+                Some(Field::ReportedAt) => tmp = self.datetime(r.reported),
+                Some(Field::Setting) => {
                     if r.fault == Fault::UnknownSetting {
                         tmp.push_str("PHARMACY");
                     } else {
@@ -269,15 +235,15 @@ impl Layout {
                         tmp.push_str(&codes[(r.specimen % codes.len() as u64) as usize]);
                     }
                 }
-                Field::Notes => tmp.push_str(notes),
-                Field::Analyte => {
+                Some(Field::ClinicalNotes) => tmp.push_str(notes),
+                Some(Field::Analyte) => {
                     if r.fault == Fault::UnknownAnalyte {
                         tmp.push_str("ZZQ9");
                     } else {
                         tmp.push_str(&self.analyte_codes[r.analyte as usize]);
                     }
                 }
-                Field::Value => {
+                Some(Field::Value) => {
                     let dec = usize::from(ANALYTES[r.analyte as usize].decimals);
                     match r.value {
                         Val::Num(v) => {
@@ -290,21 +256,21 @@ impl Layout {
                         Val::Empty => {}
                     }
                 }
-                Field::Unit => {
+                Some(Field::Unit) => {
                     if r.fault == Fault::BadUnit {
                         tmp.push_str("mmol");
                     } else if !matches!(r.value, Val::Empty) {
                         tmp.push_str(&self.unit_codes[r.analyte as usize]);
                     }
                 }
-                Field::Status => tmp.push_str(
+                Some(Field::Status) => tmp.push_str(
                     &self.status_codes[match r.status {
                         Status::Final => 0,
                         Status::Amended => 1,
                         Status::Cancelled => 2,
                     }],
                 ),
-                Field::Unmapped => {}
+                None => {}
             }
             self.push_field(line, &tmp);
         }
