@@ -622,3 +622,40 @@ fn units_are_converted_or_the_row_quarantined() {
     assert_eq!(values[0], (20.0, Some("<".to_string())));
     assert!((values[1].0 - 88.42).abs() < 1e-9 && values[1].1.is_none());
 }
+
+#[test]
+fn only_the_outward_postcode_is_kept_and_only_when_asked() {
+    use polars::prelude::*;
+    let dir = tempfile::tempdir().unwrap();
+    let summary = common::small_synth(dir.path(), "quillmere", 28);
+    let l = Linked {
+        store: dir.path().join("store"),
+        quarantine: dir.path().join("q"),
+        key: Key::from_bytes([28u8; 32], "test"),
+        summary,
+        dir,
+    };
+    run_link(&l, "quillmere", &files(l.dir.path()), true).unwrap();
+    let part = walk(&l.store.join("results"))[5].clone();
+    let df = ParquetReader::new(std::fs::File::open(part).unwrap())
+        .finish()
+        .unwrap();
+    let areas = df.column("home_area").unwrap().str().unwrap().clone();
+    let mut n = 0;
+    for a in areas.iter().flatten() {
+        // An outward code ("QV9", "QV17"), never a full postcode.
+        assert!(
+            a.starts_with("QV") && a.len() <= 4 && !a.contains(' '),
+            "{a}"
+        );
+        n += 1;
+    }
+    assert!(n > 0);
+    let d = df.column("distance_km").unwrap().f32().unwrap().clone();
+    assert!(d.iter().flatten().all(|x| (0.0..200.0).contains(&x)));
+    // The same store cannot later be extended without the area.
+    let e = run_link(&l, "quillmere", &files(l.dir.path())[..1], false)
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("keep_area"), "{e}");
+}

@@ -794,3 +794,24 @@ fn write_quarantine(path: &Path, file: &str, q: &[Quarantined]) -> std::io::Resu
     }
     std::fs::rename(&tmp, path)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::age_years;
+
+    fn day(y: i32, m: u32, d: u32) -> i64 {
+        i64::from(chrono::Datelike::num_days_from_ce(
+            &chrono::NaiveDate::from_ymd_opt(y, m, d).unwrap(),
+        )) - 719_163
+    }
+
+    #[test]
+    fn whole_years_turn_on_the_birthday() {
+        assert_eq!(age_years(day(1960, 5, 1), day(2024, 4, 30)), 63);
+        assert_eq!(age_years(day(1960, 5, 1), day(2024, 5, 1)), 64);
+        // Born on 29 February: a year is complete on 1 March in common years.
+        assert_eq!(age_years(day(2000, 2, 29), day(2023, 2, 28)), 22);
+        assert_eq!(age_years(day(2000, 2, 29), day(2023, 3, 1)), 23);
+        assert_eq!(age_years(day(2024, 1, 2), day(2024, 1, 1)), -1);
+    }
+}
