@@ -648,6 +648,14 @@ pub fn link(
             }
         }
         let changed = results.iter().any(|r| !r.skipped);
+        // A parser thread that died (a bug, not bad input) would end the stream early; never
+        // commit a run that did not see every file it was given.
+        if seq != files.len() {
+            return Err(LinkError::Accounting(format!(
+                "only {seq} of {} files came back from the parser",
+                files.len()
+            )));
+        }
         let t3 = std::time::Instant::now();
         state.finish()?;
         if profile {
