@@ -631,15 +631,6 @@ impl<W: std::io::Write> std::io::Write for HashingWriter<W> {
     }
 }
 
-pub fn sha256_file(path: &Path) -> Result<String, StoreError> {
-    use sha2::{Digest, Sha256};
-    let bytes = std::fs::read(path).map_err(|source| StoreError::Io {
-        path: path.to_path_buf(),
-        source,
-    })?;
-    Ok(hex::encode(Sha256::digest(&bytes)))
-}
-
 /// Reads a partition file back into rows (for merging the next month's extract into it).
 pub fn read_partition(
     path: &Path,

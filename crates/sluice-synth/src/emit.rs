@@ -81,8 +81,6 @@ pub struct Row {
     pub setting: Setting,
     pub status: Status,
     pub fault: Fault,
-    /// An amendment of this row is exported (so the linker must mark it superseded).
-    pub superseded: bool,
     /// The row is a planted critical value.
     pub critical: bool,
     pub monitoring: bool,
@@ -364,7 +362,6 @@ fn specimen(s: &Synth, rng: &mut impl Rng, out: &mut MonthRows, sp: Spec<'_>) {
             ][rng.random_range(0..5)];
         }
         let amend_reported = reported + rng.random_range(1440..14400);
-        let superseded = amend && amend_reported < s.history_end_minute();
         out.rows.push(Row {
             reported,
             collected: sp.collected,
@@ -376,7 +373,6 @@ fn specimen(s: &Synth, rng: &mut impl Rng, out: &mut MonthRows, sp: Spec<'_>) {
             setting: sp.setting,
             status: Status::Final,
             fault,
-            superseded,
             critical,
             monitoring: sp.monitoring,
         });
@@ -395,7 +391,6 @@ fn specimen(s: &Synth, rng: &mut impl Rng, out: &mut MonthRows, sp: Spec<'_>) {
                 reported: amend_reported,
                 value: Val::Num(new),
                 status: Status::Amended,
-                superseded: false,
                 ..out.rows.last().expect("just pushed").clone()
             });
         }
@@ -419,7 +414,6 @@ fn specimen(s: &Synth, rng: &mut impl Rng, out: &mut MonthRows, sp: Spec<'_>) {
             setting: sp.setting,
             status: Status::Cancelled,
             fault: Fault::None,
-            superseded: false,
             critical: false,
             monitoring: sp.monitoring,
         });

@@ -145,9 +145,6 @@ impl Synth {
     pub fn month_start_day(&self, m: u32) -> i64 {
         self.month_days[m as usize]
     }
-    pub fn history_end_minute(&self) -> i64 {
-        self.month_start_day(self.cfg.months) * 1440
-    }
     pub fn file_name(&self, m: u32) -> String {
         let d = add_months(self.cfg.start, m);
         format!(
