@@ -52,7 +52,7 @@ pub fn bootstrap_clustered(
         return Err(StatsError::TooFew { need: 1, got: 0 });
     }
     let estimate = stat(&all);
-    let mut buf = Vec::with_capacity(all.len());
+    let mut buf = all;
     percentile(estimate, reps, seed, level, |rng| {
         buf.clear();
         for _ in 0..clusters.len() {
@@ -91,7 +91,9 @@ pub fn bootstrap_clustered_diff(
         .flat_map(|c| c.follow_up.iter().copied())
         .collect();
     let estimate = stat(&all_follow) - stat(&all_base);
-    let (mut base, mut follow) = (Vec::new(), Vec::new());
+    // The flattened groups become the replicate buffers: already at the typical draw size, so
+    // replicates rarely grow them and never allocate otherwise.
+    let (mut base, mut follow) = (all_base, all_follow);
     percentile(estimate, reps, seed, level, |rng| {
         base.clear();
         follow.clear();

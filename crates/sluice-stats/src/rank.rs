@@ -33,6 +33,31 @@
 //! otherwise q comes from the normal approximation of W with the untied variance,
 //! q = ⌈μ − c − z·σ⌉ with c = ½ for the continuity correction (0 without), so that the normal
 //! analogue of P(W ≤ q) reaches α/2.
+//!
+//! # Order statistics without materialising the pairs
+//!
+//! On the exact path (at most 1000 observations, or nₓ·n_y ≤ 10 000) the N values are
+//! materialised and sorted. On the normal path they are never stored, so regional samples
+//! (nₓ, n_y in the hundreds of thousands, N ≈ 10¹¹) cost O((nₓ + n_y)·log) memory-light passes:
+//!
+//! * The samples are sorted once (IEEE total order). The computed values fl(xᵢ − y_j) and
+//!   fl(fl(dᵢ + d_j)/2) are monotone in each argument under that order (rounding is monotone,
+//!   and a zero result is −0 only when both operands force it), so they form an implicit
+//!   matrix sorted along rows and columns — with the very bits the materialised path produces.
+//! * A two-pointer scan gives, for any threshold t, the number of values ≤ t together with the
+//!   largest value ≤ t and the smallest value > t, in O(nₓ + n_y) (O(n) for the Walsh averages,
+//!   walking the upper triangle i ≤ j).
+//! * The k-th smallest value is found by bisection on the 64-bit total-order key of t between
+//!   the smallest and the largest value. After each scan the bracket snaps to an actual value
+//!   (the largest ≤ t when at least k values are ≤ t, otherwise the smallest > t), so the bracket
+//!   at least halves in key space and always holds actual values; it closes on the k-th smallest
+//!   exactly, within 64 scans.
+//! * The bounds are the q-th smallest and the (N − q + 1)-th smallest. The estimate follows
+//!   `quantile_sorted(.., 0.5)` step for step: the value at 0-based position ⌊(N − 1)/2⌋ and,
+//!   for even N, its successor (the same value if enough ties reach it, otherwise the smallest
+//!   value above it from one more scan), combined with the same arithmetic. The results are
+//!   therefore bit-identical to sorting all N values. N is limited to 2⁵³ so that positions
+//!   stay exact in f64.
 
 use crate::describe::quantile_sorted;
 use crate::dist::{check_finite, check_len, check_level, normal_cdf, normal_sf, z_two_sided};
@@ -57,8 +82,12 @@ const MAX_EXACT_SIGNED: usize = 1000;
 const MAX_EXACT_PRODUCT: usize = 10_000;
 /// Size rule of `Auto` for each sample.
 const AUTO_EXACT_MAX: usize = 50;
-/// Walsh averages or pairwise differences are materialised; this caps them at 256 MiB.
-const MAX_PAIRS: usize = 1 << 25;
+/// On the exact path the Walsh averages or pairwise differences are materialised; this caps them
+/// at 256 MiB (the exact size limits above are far below it).
+const MAX_MATERIALISED_PAIRS: usize = 1 << 25;
+/// On the normal path the values are only counted (see the module documentation); positions
+/// up to 2⁵³ stay exact in f64.
+const MAX_IMPLICIT_PAIRS: usize = 1 << 53;
 
 /// Result of a Wilcoxon signed-rank test.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -183,23 +212,34 @@ pub fn hodges_lehmann_one_sample(
     check_level(level)?;
     check_len(d, 1)?;
     let n = d.len();
-    let pairs = n.saturating_mul(n + 1) / 2;
-    check_pairs(pairs)?;
-    let mut walsh = Vec::with_capacity(pairs);
-    for i in 0..n {
-        for j in i..n {
-            walsh.push((d[i] + d[j]) / 2.0);
-        }
-    }
+    let pairs = n.saturating_mul(n.saturating_add(1)) / 2;
     let tied = tied_count(d);
     let exact = choose_exact(method, tied, n <= AUTO_EXACT_MAX, n, MAX_EXACT_SIGNED)?;
     let nf = n as f64;
     let sigma = (nf * (nf + 1.0) * (2.0 * nf + 1.0) / 24.0).sqrt();
-    let null = exact.then(|| ExactNull::signed_rank(n));
-    Ok(order_interval(
-        walsh,
+    if exact {
+        check_pairs(pairs, MAX_MATERIALISED_PAIRS)?;
+        let mut walsh = Vec::with_capacity(pairs);
+        for i in 0..n {
+            for j in i..n {
+                walsh.push((d[i] + d[j]) / 2.0);
+            }
+        }
+        let null = ExactNull::signed_rank(n);
+        return Ok(order_interval(
+            walsh,
+            level,
+            Some(null),
+            sigma,
+            continuity(method),
+        ));
+    }
+    check_pairs(pairs, MAX_IMPLICIT_PAIRS)?;
+    let mut sorted = d.to_vec();
+    sorted.sort_by(f64::total_cmp);
+    Ok(implicit_interval(
+        &WalshAverages { d: &sorted },
         level,
-        null,
         sigma,
         continuity(method),
     ))
@@ -218,33 +258,44 @@ pub fn hodges_lehmann_two_sample(
     check_len(y, 1)?;
     let (m, n) = (x.len(), y.len());
     let pairs = m.saturating_mul(n);
-    check_pairs(pairs)?;
-    let diffs: Vec<f64> = x
-        .iter()
-        .flat_map(|a| y.iter().map(move |b| a - b))
-        .collect();
     let combined: Vec<f64> = x.iter().chain(y).copied().collect();
     let tied = tied_count(&combined);
+    drop(combined);
     let small = m <= AUTO_EXACT_MAX && n <= AUTO_EXACT_MAX;
     let exact = choose_exact(method, tied, small, pairs, MAX_EXACT_PRODUCT)?;
     let (mf, nf) = (m as f64, n as f64);
     let sigma = (mf * nf * (mf + nf + 1.0) / 12.0).sqrt();
-    let null = exact.then(|| ExactNull::rank_sum(m, n));
-    Ok(order_interval(
-        diffs,
+    if exact {
+        check_pairs(pairs, MAX_MATERIALISED_PAIRS)?;
+        let diffs: Vec<f64> = x
+            .iter()
+            .flat_map(|a| y.iter().map(move |b| a - b))
+            .collect();
+        let null = ExactNull::rank_sum(m, n);
+        return Ok(order_interval(
+            diffs,
+            level,
+            Some(null),
+            sigma,
+            continuity(method),
+        ));
+    }
+    check_pairs(pairs, MAX_IMPLICIT_PAIRS)?;
+    let mut xs = x.to_vec();
+    xs.sort_by(f64::total_cmp);
+    let mut ys = y.to_vec();
+    ys.sort_by(f64::total_cmp);
+    Ok(implicit_interval(
+        &Differences { x: &xs, y: &ys },
         level,
-        null,
         sigma,
         continuity(method),
     ))
 }
 
-fn check_pairs(pairs: usize) -> Result<()> {
-    if pairs > MAX_PAIRS {
-        return Err(StatsError::TooManyPairs {
-            pairs,
-            max: MAX_PAIRS,
-        });
+fn check_pairs(pairs: usize, max: usize) -> Result<()> {
+    if pairs > max {
+        return Err(StatsError::TooManyPairs { pairs, max });
     }
     Ok(())
 }
@@ -277,19 +328,17 @@ fn cube_minus(t: usize) -> f64 {
     t * t * t - t
 }
 
-/// Bounds at the q-th smallest and q-th largest of `values` (see the module documentation), with
-/// q from the exact null when given, else from the normal approximation N(N/2, σ²).
-fn order_interval(
-    mut values: Vec<f64>,
+/// Rank q of the bounds among N values (see the module documentation), with the achieved
+/// confidence: from the exact null when given, else from the normal approximation N(N/2, σ²).
+fn bound_rank(
+    big_n: usize,
     level: f64,
-    null: Option<ExactNull>,
+    null: Option<&ExactNull>,
     sigma: f64,
     continuity: bool,
-) -> HodgesLehmann {
-    values.sort_by(f64::total_cmp);
-    let big_n = values.len();
+) -> (usize, f64) {
     let alpha = 1.0 - level;
-    let (q, achieved_level) = match &null {
+    match null {
         Some(null) => {
             let q = null.quantile(alpha / 2.0).max(1);
             (q, 1.0 - 2.0 * null.cdf(q as f64 - 1.0))
@@ -301,7 +350,20 @@ fn order_interval(
             let achieved = 1.0 - 2.0 * normal_cdf((q - 1.0 + c - mu) / sigma);
             (q as usize, achieved)
         }
-    };
+    }
+}
+
+/// Bounds at the q-th smallest and q-th largest of `values`, materialised and sorted.
+fn order_interval(
+    mut values: Vec<f64>,
+    level: f64,
+    null: Option<ExactNull>,
+    sigma: f64,
+    continuity: bool,
+) -> HodgesLehmann {
+    values.sort_by(f64::total_cmp);
+    let big_n = values.len();
+    let (q, achieved_level) = bound_rank(big_n, level, null.as_ref(), sigma, continuity);
     HodgesLehmann {
         interval: Interval {
             estimate: quantile_sorted(&values, 0.5),
@@ -311,6 +373,198 @@ fn order_interval(
         },
         achieved_level,
         exact: null.is_some(),
+    }
+}
+
+/// The same as [`order_interval`] on the normal path, by selection on the implicit matrix.
+fn implicit_interval(
+    values: &impl PairValues,
+    level: f64,
+    sigma: f64,
+    continuity: bool,
+) -> HodgesLehmann {
+    let big_n = values.len();
+    let (q, achieved_level) = bound_rank(big_n, level, None, sigma, continuity);
+    HodgesLehmann {
+        interval: Interval {
+            estimate: implicit_median(values),
+            lower: select(values, q),
+            upper: select(values, big_n - q + 1),
+            level,
+        },
+        achieved_level,
+        exact: false,
+    }
+}
+
+/// What one threshold scan of the implicit values reports.
+struct Scan {
+    /// Number of values ≤ t (total order).
+    at_most: usize,
+    /// Largest value ≤ t; meaningful when `at_most > 0`.
+    max_at_most: f64,
+    /// Smallest value > t; meaningful when `at_most < len()`.
+    min_above: f64,
+}
+
+/// N pairwise values held implicitly as a matrix sorted along rows and columns.
+trait PairValues {
+    fn len(&self) -> usize;
+    /// Smallest and largest value.
+    fn range(&self) -> (f64, f64);
+    fn scan(&self, t: f64) -> Scan;
+}
+
+fn above(v: f64, t: f64) -> bool {
+    v.total_cmp(&t).is_gt()
+}
+
+fn total_max(a: f64, b: f64) -> f64 {
+    if b.total_cmp(&a).is_gt() { b } else { a }
+}
+
+fn total_min(a: f64, b: f64) -> f64 {
+    if b.total_cmp(&a).is_lt() { b } else { a }
+}
+
+/// All xᵢ − y_j, with x and y sorted in total order: each row (fixed i) decreases along j.
+struct Differences<'a> {
+    x: &'a [f64],
+    y: &'a [f64],
+}
+
+impl PairValues for Differences<'_> {
+    fn len(&self) -> usize {
+        self.x.len() * self.y.len()
+    }
+
+    fn range(&self) -> (f64, f64) {
+        let (x, y) = (self.x, self.y);
+        (x[0] - y[y.len() - 1], x[x.len() - 1] - y[0])
+    }
+
+    fn scan(&self, t: f64) -> Scan {
+        let (x, y) = (self.x, self.y);
+        let n = y.len();
+        let mut at_most = 0;
+        let (mut max_at_most, mut min_above) = (f64::NEG_INFINITY, f64::INFINITY);
+        // In row i the values ≤ t are j ≥ p; p never decreases as xᵢ grows.
+        let mut p = 0;
+        for &a in x {
+            while p < n && above(a - y[p], t) {
+                p += 1;
+            }
+            at_most += n - p;
+            if p < n {
+                max_at_most = total_max(max_at_most, a - y[p]);
+            }
+            if p > 0 {
+                min_above = total_min(min_above, a - y[p - 1]);
+            }
+        }
+        Scan {
+            at_most,
+            max_at_most,
+            min_above,
+        }
+    }
+}
+
+/// All Walsh averages (dᵢ + d_j)/2, i ≤ j, with d sorted in total order: the upper triangle of
+/// a symmetric matrix increasing along rows and columns.
+struct WalshAverages<'a> {
+    d: &'a [f64],
+}
+
+fn walsh(a: f64, b: f64) -> f64 {
+    (a + b) / 2.0
+}
+
+impl PairValues for WalshAverages<'_> {
+    fn len(&self) -> usize {
+        let n = self.d.len();
+        n * (n + 1) / 2
+    }
+
+    fn range(&self) -> (f64, f64) {
+        let (first, last) = (self.d[0], self.d[self.d.len() - 1]);
+        (walsh(first, first), walsh(last, last))
+    }
+
+    fn scan(&self, t: f64) -> Scan {
+        let d = self.d;
+        let mut at_most = 0;
+        let (mut max_at_most, mut min_above) = (f64::NEG_INFINITY, f64::INFINITY);
+        // r = number of j (over the full row) with w(i, j) ≤ t; it never increases with i.
+        let mut r = d.len();
+        for (i, &a) in d.iter().enumerate() {
+            while r > i && above(walsh(a, d[r - 1]), t) {
+                r -= 1;
+            }
+            if r <= i {
+                // Row i and every later row lie wholly above t; w(i, i) is their minimum.
+                min_above = total_min(min_above, walsh(a, a));
+                break;
+            }
+            at_most += r - i;
+            max_at_most = total_max(max_at_most, walsh(a, d[r - 1]));
+            if r < d.len() {
+                min_above = total_min(min_above, walsh(a, d[r]));
+            }
+        }
+        Scan {
+            at_most,
+            max_at_most,
+            min_above,
+        }
+    }
+}
+
+/// Key of `v` that orders as [`f64::total_cmp`] does.
+fn total_key(v: f64) -> i64 {
+    let bits = v.to_bits() as i64;
+    bits ^ (((bits >> 63) as u64) >> 1) as i64
+}
+
+/// Inverse of [`total_key`] (the map is an involution on the bits).
+fn from_total_key(key: i64) -> f64 {
+    f64::from_bits((key ^ (((key >> 63) as u64) >> 1) as i64) as u64)
+}
+
+/// The k-th smallest (1-based) of the implicit values, exactly: bisection on the total-order key
+/// with the bracket snapped to actual values after every scan.
+fn select(values: &impl PairValues, k: usize) -> f64 {
+    debug_assert!(k >= 1 && k <= values.len());
+    let (mut lo, mut hi) = values.range();
+    while lo.total_cmp(&hi).is_lt() {
+        let mid = (i128::from(total_key(lo)) + i128::from(total_key(hi))).div_euclid(2);
+        let scan = values.scan(from_total_key(mid as i64));
+        if scan.at_most >= k {
+            hi = scan.max_at_most;
+        } else {
+            lo = scan.min_above;
+        }
+    }
+    lo
+}
+
+/// `quantile_sorted(sorted values, 0.5)` without the sorted values.
+fn implicit_median(values: &impl PairValues) -> f64 {
+    let big_n = values.len();
+    let h = (big_n - 1) as f64 * 0.5;
+    let lo = h.floor() as usize;
+    let frac = h - lo as f64;
+    let at = select(values, lo + 1);
+    if frac > 0.0 && lo + 1 < big_n {
+        let scan = values.scan(at);
+        let next = if scan.at_most >= lo + 2 {
+            at
+        } else {
+            scan.min_above
+        };
+        at + frac * (next - at)
+    } else {
+        at
     }
 }
 
@@ -541,6 +795,150 @@ mod tests {
             rank_sum_test(&[1.0, 1.0], &[1.0], Alternative::TwoSided, RankMethod::Auto),
             Err(StatsError::ZeroVariance(1.0))
         );
+    }
+
+    use rand::{Rng, SeedableRng};
+    use rand_pcg::Pcg64Mcg;
+
+    /// Seeded sample; with `decimals` the values are rounded, which makes ties and −0.0.
+    fn sample(rng: &mut Pcg64Mcg, n: usize, shift: f64, decimals: Option<i32>) -> Vec<f64> {
+        (0..n)
+            .map(|_| {
+                let v: f64 = rng.random_range(-1.0..1.0) * rng.random_range(0.0..3.0) + shift;
+                match decimals {
+                    Some(k) => (v * 10f64.powi(k)).round() / 10f64.powi(k),
+                    None => v,
+                }
+            })
+            .collect()
+    }
+
+    fn all_differences(x: &[f64], y: &[f64]) -> Vec<f64> {
+        x.iter()
+            .flat_map(|a| y.iter().map(move |b| a - b))
+            .collect()
+    }
+
+    fn all_walsh(d: &[f64]) -> Vec<f64> {
+        let mut w = Vec::new();
+        for i in 0..d.len() {
+            for j in i..d.len() {
+                w.push((d[i] + d[j]) / 2.0);
+            }
+        }
+        w
+    }
+
+    fn bits(hl: &HodgesLehmann) -> [u64; 4] {
+        let i = hl.interval;
+        [i.estimate, i.lower, i.upper, hl.achieved_level].map(f64::to_bits)
+    }
+
+    /// The normal path against the materialised reference (`order_interval` without a null).
+    fn check_two(x: &[f64], y: &[f64], level: f64, continuity: bool) {
+        let method = RankMethod::Normal { continuity };
+        let got = hodges_lehmann_two_sample(x, y, level, method).unwrap();
+        let (mf, nf) = (x.len() as f64, y.len() as f64);
+        let sigma = (mf * nf * (mf + nf + 1.0) / 12.0).sqrt();
+        let want = order_interval(all_differences(x, y), level, None, sigma, continuity);
+        assert_eq!(
+            bits(&got),
+            bits(&want),
+            "m={} n={} {got:?} {want:?}",
+            mf,
+            nf
+        );
+        assert!(!got.exact);
+    }
+
+    fn check_one(d: &[f64], level: f64, continuity: bool) {
+        let method = RankMethod::Normal { continuity };
+        let got = hodges_lehmann_one_sample(d, level, method).unwrap();
+        let nf = d.len() as f64;
+        let sigma = (nf * (nf + 1.0) * (2.0 * nf + 1.0) / 24.0).sqrt();
+        let want = order_interval(all_walsh(d), level, None, sigma, continuity);
+        assert_eq!(bits(&got), bits(&want), "n={} {got:?} {want:?}", nf);
+    }
+
+    #[test]
+    fn selection_matches_sorting_at_every_rank() {
+        let mut rng = Pcg64Mcg::seed_from_u64(7);
+        for round in 0..200 {
+            let decimals = [None, Some(0), Some(1), Some(2)][round % 4];
+            let m = rng.random_range(1..25);
+            let n = rng.random_range(1..25);
+            let mut x = sample(&mut rng, m, 0.3, decimals);
+            let mut y = sample(&mut rng, n, 0.0, decimals);
+            if round % 7 == 0 {
+                x[0] = -0.0;
+                y[n - 1] = 0.0;
+            }
+            let mut want = all_differences(&x, &y);
+            want.sort_by(f64::total_cmp);
+            x.sort_by(f64::total_cmp);
+            y.sort_by(f64::total_cmp);
+            let diffs = Differences { x: &x, y: &y };
+            for (k, w) in want.iter().enumerate() {
+                assert_eq!(
+                    select(&diffs, k + 1).to_bits(),
+                    w.to_bits(),
+                    "{x:?} {y:?} {k}"
+                );
+            }
+            assert_eq!(
+                implicit_median(&diffs).to_bits(),
+                quantile_sorted(&want, 0.5).to_bits()
+            );
+            let mut want = all_walsh(&x);
+            want.sort_by(f64::total_cmp);
+            let walsh = WalshAverages { d: &x };
+            for (k, w) in want.iter().enumerate() {
+                assert_eq!(select(&walsh, k + 1).to_bits(), w.to_bits(), "{x:?} {k}");
+            }
+            assert_eq!(
+                implicit_median(&walsh).to_bits(),
+                quantile_sorted(&want, 0.5).to_bits()
+            );
+        }
+    }
+
+    #[test]
+    fn implicit_normal_path_is_bit_identical_to_materialised() {
+        let mut rng = Pcg64Mcg::seed_from_u64(2024);
+        for round in 0..60 {
+            let decimals = [None, Some(0), Some(1), Some(3)][round % 4];
+            let m = rng.random_range(1..120);
+            let n = rng.random_range(1..120);
+            let x = sample(&mut rng, m, 0.4, decimals);
+            let y = sample(&mut rng, n, 0.0, decimals);
+            let level = [0.95, 0.9, 0.99, 0.5][round % 4];
+            check_two(&x, &y, level, round % 3 != 0);
+            check_one(&x, level, round % 3 != 1);
+        }
+        // Heavy ties: three distinct values only.
+        let x: Vec<f64> = (0..301).map(|i| f64::from(i % 3)).collect();
+        let y: Vec<f64> = (0..200).map(|i| f64::from(i % 3) - 0.5).collect();
+        check_two(&x, &y, 0.95, true);
+        check_one(&y, 0.95, true);
+    }
+
+    #[test]
+    fn implicit_normal_path_at_3000_matches_materialised() {
+        let mut rng = Pcg64Mcg::seed_from_u64(11);
+        let x = sample(&mut rng, 3000, 0.25, Some(2));
+        let y = sample(&mut rng, 3000, 0.0, Some(2));
+        check_two(&x, &y, 0.95, true);
+        check_one(&x, 0.95, true);
+        // Auto takes the normal path for tied data, also through the public entry point.
+        let auto = hodges_lehmann_two_sample(&x, &y, 0.95, RankMethod::Auto).unwrap();
+        let normal =
+            hodges_lehmann_two_sample(&x, &y, 0.95, RankMethod::Normal { continuity: true })
+                .unwrap();
+        assert_eq!(bits(&auto), bits(&normal));
+        let x = sample(&mut rng, 2999, 0.25, None);
+        let y = sample(&mut rng, 3001, 0.0, None);
+        check_two(&x, &y, 0.9, false);
+        check_one(&y, 0.9, false);
     }
 
     #[test]

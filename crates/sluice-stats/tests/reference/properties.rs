@@ -147,3 +147,30 @@ fn error_messages_carry_the_value() {
     let e = quantile(&[1.0, f64::INFINITY], 0.5).unwrap_err();
     assert_eq!(e.to_string(), "observation 1 is not finite: inf");
 }
+
+/// Regional-scale samples far beyond what could be materialised (4·10¹⁰ differences, 1.25·10⁹
+/// Walsh averages) go through the counting path; no timing is asserted.
+#[test]
+fn hodges_lehmann_at_regional_scale_runs() {
+    let round = |v: f64| (v * 100.0).round() / 100.0;
+    let x: Vec<f64> = spread(200_000, 0.5).into_iter().map(round).collect();
+    let y: Vec<f64> = spread(200_000, 0.0).into_iter().map(round).collect();
+    let hl = hodges_lehmann_two_sample(&x, &y, 0.95, RankMethod::Auto).unwrap();
+    assert!(!hl.exact);
+    let i = hl.interval;
+    assert!(i.lower <= i.estimate && i.estimate <= i.upper, "{hl:?}");
+    assert!(
+        (i.estimate - 0.5).abs() < 0.02 && i.upper - i.lower < 0.05,
+        "{hl:?}"
+    );
+    assert!((hl.achieved_level - 0.95).abs() < 1e-3);
+
+    let d: Vec<f64> = spread(50_000, 0.25).into_iter().map(round).collect();
+    let hl = hodges_lehmann_one_sample(&d, 0.95, RankMethod::Auto).unwrap();
+    let i = hl.interval;
+    assert!(i.lower <= i.estimate && i.estimate <= i.upper, "{hl:?}");
+    assert!(
+        (i.estimate - 0.25).abs() < 0.02 && i.upper - i.lower < 0.1,
+        "{hl:?}"
+    );
+}
