@@ -6,4 +6,5 @@ mod cli;
 mod common;
 mod link;
 mod nhs;
+mod study;
 mod synth;
