@@ -33,6 +33,72 @@ pub enum Command {
     Key(KeyCommand),
     /// Link extract files into the pseudonymised store (incremental, idempotent).
     Link(LinkArgs),
+    /// Run a study over the store: patient-level tables and aggregate candidates, inside the
+    /// secure area.
+    Measure(MeasureArgs),
+    /// Put a study's aggregate candidates through disclosure control and write a release.
+    Release(ReleaseArgs),
+    /// The IG officer's independent check of a release folder (exit 1 on any failure).
+    Check {
+        /// The release folder.
+        release: PathBuf,
+    },
+    /// Record the IG officer's decision, bound to the exact bytes of the release.
+    Approve(ApproveArgs),
+    /// Copy a checked and approved release out of the secure area.
+    Export {
+        /// The release folder.
+        release: PathBuf,
+        /// Destination folder (must not exist yet).
+        #[arg(long)]
+        to: PathBuf,
+    },
+}
+
+#[derive(Args, Debug)]
+pub struct ReleaseArgs {
+    /// The work folder written by `sluice measure`.
+    #[arg(long)]
+    pub work: PathBuf,
+    /// Disclosure rules: a path, or a name under <policies>/disclosure/.
+    #[arg(long, default_value = "standard")]
+    pub rules: String,
+    /// The release folder to write (must not exist, or be empty).
+    #[arg(long)]
+    pub out: PathBuf,
+}
+
+#[derive(Args, Debug)]
+pub struct ApproveArgs {
+    /// The release folder.
+    pub release: PathBuf,
+    /// Who decides (recorded in the approval).
+    #[arg(long)]
+    pub reviewer: String,
+    #[arg(long, value_enum)]
+    pub decision: DecisionArg,
+    /// The reviewer's note (recorded in the approval).
+    #[arg(long, default_value = "")]
+    pub note: String,
+}
+
+#[derive(clap::ValueEnum, Clone, Copy, Debug)]
+pub enum DecisionArg {
+    Approved,
+    Rejected,
+}
+
+#[derive(Args, Debug)]
+pub struct MeasureArgs {
+    /// Study policy: a path, or a name under <policies>/studies/.
+    #[arg(long)]
+    pub study: String,
+    /// The store folder made by `sluice link`.
+    #[arg(long)]
+    pub store: PathBuf,
+    /// Work folder inside the secure area (patient-level tables and candidates.json).
+    #[arg(long)]
+    pub work: PathBuf,
 }
 
 #[derive(Subcommand, Debug)]

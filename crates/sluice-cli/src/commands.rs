@@ -1,6 +1,9 @@
 //! What each command does: resolve paths, call the library, print the outcome.
 
-use crate::cli::{Cli, Command, DemoArgs, KeyCommand, LinkArgs, SynthArgs};
+use crate::cli::{
+    ApproveArgs, Cli, Command, DecisionArg, DemoArgs, KeyCommand, LinkArgs, MeasureArgs,
+    ReleaseArgs, SynthArgs,
+};
 use anyhow::{Context, Result, bail};
 use chrono::NaiveDate;
 use sluice_policy::{AnalyteTable, Profile};
@@ -13,6 +16,13 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         Command::Demo(a) => demo(&cli.policies, a),
         Command::Key(k) => key(k),
         Command::Link(a) => link(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
+        Command::Measure(a) => measure(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
+        Command::Release(a) => release(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
+        Command::Check { release } => check(&cli.policies, &release),
+        Command::Approve(a) => approve(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
+        Command::Export { release, to } => {
+            export(&cli.policies, &release, &to).map(|_| ExitCode::SUCCESS)
+        }
     }
 }
 
@@ -42,6 +52,115 @@ fn named_policy(policies: &Path, dir: &str, name: &str) -> PathBuf {
     } else {
         policies.join(dir).join(format!("{name}.toml"))
     }
+}
+
+fn release(policies: &Path, a: &ReleaseArgs) -> Result<sluice_release::ReleaseManifest> {
+    let candidates = sluice_aggregate::Candidates::load(&a.work)?;
+    let rules_path = named_policy(policies, "disclosure", &a.rules);
+    let rules = sluice_disclose::Rules::load(&rules_path)?;
+    let floor = sluice_disclose::Floor::load(&policies.join("disclosure/floor.toml"))?;
+    rules.check_floor(&floor)?;
+    let mut checked = Vec::with_capacity(candidates.tables.len());
+    for t in &candidates.tables {
+        checked.push(sluice_disclose::control(t, &rules)?);
+    }
+    let report = crate::report::render(&candidates.provenance, &rules, &checked)?;
+    let m = sluice_release::write_release(
+        &a.out,
+        &candidates.provenance,
+        &rules,
+        &checked,
+        &[("report.html".to_string(), report.into_bytes())],
+    )?;
+    let withheld: usize = checked.iter().map(|t| t.withheld()).sum();
+    let rows: usize = checked.iter().map(|t| t.rows().len()).sum();
+    eprintln!(
+        "release {}: {} tables, {rows} rows, {withheld} withheld under {}",
+        a.out.display(),
+        checked.len(),
+        rules_path.display()
+    );
+    eprintln!("next: sluice check {}", a.out.display());
+    Ok(m)
+}
+
+fn check_policy(policies: &Path) -> Result<sluice_release::CheckPolicy> {
+    Ok(sluice_release::CheckPolicy::load_dir(
+        &policies.join("disclosure"),
+    )?)
+}
+
+fn check(policies: &Path, rel: &Path) -> Result<ExitCode> {
+    let verdict = sluice_release::check(rel, &check_policy(policies)?);
+    println!("{verdict}");
+    Ok(if verdict.passed() {
+        ExitCode::SUCCESS
+    } else {
+        ExitCode::from(1)
+    })
+}
+
+fn approve(policies: &Path, a: &ApproveArgs) -> Result<sluice_release::ApprovalRecord> {
+    let decision = match a.decision {
+        DecisionArg::Approved => sluice_release::Decision::Approved,
+        DecisionArg::Rejected => sluice_release::Decision::Rejected,
+    };
+    let r = sluice_release::approve(
+        &a.release,
+        &a.reviewer,
+        decision,
+        &a.note,
+        &check_policy(policies)?,
+    )?;
+    println!(
+        "{:?} by {} at {} for manifest {}",
+        r.decision, r.reviewer, r.time_utc, r.manifest_sha256
+    );
+    Ok(r)
+}
+
+fn export(policies: &Path, rel: &Path, to: &Path) -> Result<sluice_release::ExportReport> {
+    let r = sluice_release::export(rel, to, &check_policy(policies)?)?;
+    println!(
+        "exported {} files ({} bytes) to {}, approved by {} at {}",
+        r.files.len(),
+        r.bytes,
+        r.to.display(),
+        r.reviewer,
+        r.approved_at
+    );
+    Ok(r)
+}
+
+fn measure(policies: &Path, a: &MeasureArgs) -> Result<sluice_study::Outcome> {
+    let study = named_policy(policies, "studies", &a.study);
+    let o = sluice_study::measure(&sluice_study::Options {
+        study: &study,
+        policies,
+        store: &a.store,
+        work: &a.work,
+    })?;
+    if std::env::var_os("SLUICE_PROFILE").is_some() {
+        for (name, secs) in &o.timings {
+            eprintln!("measure {name}: {secs:.3} s");
+        }
+    }
+    eprintln!(
+        "measure {}: {} result rows read{}",
+        o.study,
+        o.rows_read,
+        o.cohort_size
+            .map(|n| format!(", cohort of {n} patients"))
+            .unwrap_or_default()
+    );
+    for (name, rows) in &o.tables {
+        println!("{name}\t{rows}");
+    }
+    eprintln!(
+        "aggregate candidates: {} (inside the secure area; release them with sluice release)",
+        o.candidates.display()
+    );
+    Ok(o)
 }
 
 fn link(policies: &Path, a: &LinkArgs) -> Result<sluice_link::Report> {

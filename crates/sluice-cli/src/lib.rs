@@ -4,6 +4,7 @@
 
 pub mod cli;
 mod commands;
+mod report;
 
 use clap::Parser;
 

@@ -1,0 +1,907 @@
+//! The independent check the IG officer runs on a release folder before approving it.
+//!
+//! It reads only the folder (the manifest and the Parquet files, through arrow-rs, not the
+//! polars code that computed the tables) and trusts nothing the writer claims: it re-hashes every
+//! file, refuses files the manifest does not list, re-reads the disclosure rules recorded in the
+//! manifest and holds them to the site floor, and re-applies those rules to every released value:
+//! counts, statistics, quantiles, withheld rows and secondary suppression over the recorded
+//! constraints. Columns must be on the site's allow-list (`policies/disclosure/columns.toml`) and
+//! pass generic bans (no day-level dates, no 64-bit integers but counts, no long free text).
+//!
+//! What it cannot check: dominance and the p%-rule (the contributions are never released), that
+//! the recorded constraints are all the table's linear relations, and the content of extra files
+//! (e.g. the HTML report), which it only hashes and lists for the reviewer.
+
+use arrow::array::{Array, Float64Array, Int32Array, Int64Array, StringArray};
+use arrow::datatypes::DataType;
+use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+use serde::Deserialize;
+use sluice_aggregate::{Column, Constraint, Role, Value};
+use sluice_disclose::{Floor, PATIENTS, Rules, Status, unsafe_constraints};
+use std::collections::{BTreeMap, BTreeSet};
+use std::fmt;
+use std::path::{Path, PathBuf};
+
+use crate::manifest::{APPROVAL, FileKind, MANIFEST, META_PREFIX, ReleaseManifest, SCHEMA_VERSION};
+use crate::write::{DISCLOSURE, plain_name};
+use crate::{ReleaseError, sha256};
+
+/// Parquet column types a release may use.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ColumnType {
+    Utf8,
+    Int32,
+    Int64,
+    Float64,
+}
+
+impl ColumnType {
+    fn of(t: &DataType) -> Option<ColumnType> {
+        match t {
+            DataType::Utf8 => Some(ColumnType::Utf8),
+            DataType::Int32 => Some(ColumnType::Int32),
+            DataType::Int64 => Some(ColumnType::Int64),
+            DataType::Float64 => Some(ColumnType::Float64),
+            _ => None,
+        }
+    }
+}
+
+#[derive(Clone, Debug, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct AllowedColumn {
+    #[serde(rename = "type")]
+    pub column_type: ColumnType,
+    /// Roles the column may have: dimension, patients, count, statistic, quantile, magnitude.
+    pub roles: Vec<String>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct AllowToml {
+    max_text_chars: usize,
+    columns: BTreeMap<String, AllowedColumn>,
+}
+
+/// The aggregate columns a release may contain (`policies/disclosure/columns.toml`).
+#[derive(Clone, Debug, PartialEq)]
+pub struct AllowList {
+    pub max_text_chars: usize,
+    pub columns: BTreeMap<String, AllowedColumn>,
+    pub path: PathBuf,
+}
+
+const ROLES: [&str; 6] = [
+    "dimension",
+    "patients",
+    "count",
+    "statistic",
+    "quantile",
+    "magnitude",
+];
+
+impl AllowList {
+    pub fn load(path: &Path) -> Result<AllowList, ReleaseError> {
+        let text = std::fs::read_to_string(path).map_err(crate::io(path))?;
+        AllowList::parse(&text, path)
+    }
+
+    pub fn parse(text: &str, path: &Path) -> Result<AllowList, ReleaseError> {
+        let t: AllowToml = toml::from_str(text).map_err(|e| ReleaseError::Format {
+            path: path.to_path_buf(),
+            message: e.to_string().trim().replace('\n', " "),
+        })?;
+        for (name, c) in &t.columns {
+            if let Some(r) = c.roles.iter().find(|r| !ROLES.contains(&r.as_str())) {
+                return Err(ReleaseError::Format {
+                    path: path.to_path_buf(),
+                    message: format!("columns.{name}.roles: unknown role {r:?}"),
+                });
+            }
+        }
+        Ok(AllowList {
+            max_text_chars: t.max_text_chars,
+            columns: t.columns,
+            path: path.to_path_buf(),
+        })
+    }
+}
+
+/// What a check holds a release to: the site floor and the column allow-list.
+#[derive(Clone, Debug, PartialEq)]
+pub struct CheckPolicy {
+    pub floor: Floor,
+    pub columns: AllowList,
+}
+
+impl CheckPolicy {
+    pub fn load(floor: &Path, columns: &Path) -> Result<CheckPolicy, ReleaseError> {
+        Ok(CheckPolicy {
+            floor: Floor::load(floor)?,
+            columns: AllowList::load(columns)?,
+        })
+    }
+
+    /// `floor.toml` and `columns.toml` from one folder (normally `policies/disclosure`).
+    pub fn load_dir(dir: &Path) -> Result<CheckPolicy, ReleaseError> {
+        CheckPolicy::load(&dir.join("floor.toml"), &dir.join("columns.toml"))
+    }
+}
+
+/// One failure: the file, the row where there is one, the rule broken and what was found.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Problem {
+    pub file: String,
+    pub row: Option<usize>,
+    pub rule: String,
+    pub message: String,
+}
+
+impl fmt::Display for Problem {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self.row {
+            Some(r) => write!(
+                f,
+                "{}, row {}: {}: {}",
+                self.file, r, self.rule, self.message
+            ),
+            None => write!(f, "{}: {}: {}", self.file, self.rule, self.message),
+        }
+    }
+}
+
+/// The result of [`check`]. A caller exits non-zero unless [`Verdict::passed`].
+#[derive(Clone, Debug, PartialEq)]
+pub struct Verdict {
+    pub release: PathBuf,
+    pub problems: Vec<Problem>,
+    pub tables: usize,
+    pub rows: usize,
+    /// Extra files: hashed against the manifest, content for the reviewer to read.
+    pub unchecked: Vec<String>,
+}
+
+impl Verdict {
+    pub fn passed(&self) -> bool {
+        self.problems.is_empty()
+    }
+
+    fn fail(&mut self, file: &str, row: Option<usize>, rule: &str, message: String) {
+        self.problems.push(Problem {
+            file: file.into(),
+            row,
+            rule: rule.into(),
+            message,
+        });
+    }
+}
+
+impl fmt::Display for Verdict {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        if self.passed() {
+            write!(
+                f,
+                "PASS: {}: {} tables ({} rows) match the manifest, meet its disclosure rules and the site floor",
+                self.release.display(),
+                self.tables,
+                self.rows
+            )?;
+            if !self.unchecked.is_empty() {
+                write!(
+                    f,
+                    "; hashed but for the reviewer to read: {}",
+                    self.unchecked.join(", ")
+                )?;
+            }
+            Ok(())
+        } else {
+            write!(
+                f,
+                "FAIL: {} problems in {}",
+                self.problems.len(),
+                self.release.display()
+            )?;
+            for p in &self.problems {
+                write!(f, "\n  {p}")?;
+            }
+            Ok(())
+        }
+    }
+}
+
+/// Checks the release folder `rel` against `policy`. Never fails itself: anything wrong,
+/// including an unreadable folder, is a problem in the verdict.
+pub fn check(rel: &Path, policy: &CheckPolicy) -> Verdict {
+    let mut v = Verdict {
+        release: rel.to_path_buf(),
+        problems: Vec::new(),
+        tables: 0,
+        rows: 0,
+        unchecked: Vec::new(),
+    };
+    let bytes = match std::fs::read(rel.join(MANIFEST)) {
+        Ok(b) => b,
+        Err(e) => {
+            v.fail(
+                MANIFEST,
+                None,
+                "manifest",
+                format!("cannot read: {e}; not a release"),
+            );
+            return v;
+        }
+    };
+    let m: ReleaseManifest = match serde_json::from_slice(&bytes) {
+        Ok(m) => m,
+        Err(e) => {
+            v.fail(
+                MANIFEST,
+                None,
+                "manifest",
+                format!("not a release manifest: {e}"),
+            );
+            return v;
+        }
+    };
+    if m.schema_version != SCHEMA_VERSION {
+        v.fail(
+            MANIFEST,
+            None,
+            "manifest",
+            format!(
+                "schema version {} but this check reads {SCHEMA_VERSION}",
+                m.schema_version
+            ),
+        );
+        return v;
+    }
+    let rules = manifest_rules(&m, policy, &mut v);
+    let listed = listed_files(rel, &m, &mut v);
+
+    for entry in &m.files {
+        if !listed.contains(&entry.name) {
+            continue;
+        }
+        let path = rel.join(&entry.name);
+        let bytes = match std::fs::read(&path) {
+            Ok(b) => b,
+            Err(e) => {
+                v.fail(
+                    &entry.name,
+                    None,
+                    "hash",
+                    format!("listed in the manifest but cannot be read: {e}"),
+                );
+                continue;
+            }
+        };
+        if bytes.len() as u64 != entry.bytes {
+            v.fail(
+                &entry.name,
+                None,
+                "hash",
+                format!(
+                    "{} bytes but the manifest records {}",
+                    bytes.len(),
+                    entry.bytes
+                ),
+            );
+        }
+        let h = sha256(&bytes);
+        if h != entry.sha256 {
+            v.fail(
+                &entry.name,
+                None,
+                "hash",
+                format!("sha256 {h} but the manifest records {}", entry.sha256),
+            );
+        }
+        match entry.kind {
+            FileKind::Extra => v.unchecked.push(entry.name.clone()),
+            FileKind::Table => {
+                if let Some(rules) = &rules {
+                    check_table(&path, entry, &m, rules, policy, &mut v);
+                }
+            }
+        }
+    }
+    v
+}
+
+/// The rules recorded in the manifest, if they are intact; held to the floor.
+fn manifest_rules(m: &ReleaseManifest, policy: &CheckPolicy, v: &mut Verdict) -> Option<Rules> {
+    let r = &m.disclosure_rules;
+    let h = sha256(r.content.as_bytes());
+    if h != r.sha256 {
+        v.fail(
+            MANIFEST,
+            None,
+            "rules",
+            format!(
+                "disclosure rules content has sha256 {h} but the manifest records {}",
+                r.sha256
+            ),
+        );
+    }
+    let origin = PathBuf::from(format!("{MANIFEST} disclosure_rules ({})", r.path));
+    match Rules::parse(&r.content, &origin) {
+        Ok(rules) => {
+            if let Err(e) = rules.check_floor(&policy.floor) {
+                v.fail(MANIFEST, None, "floor", e.to_string());
+            }
+            Some(rules)
+        }
+        Err(e) => {
+            v.fail(MANIFEST, None, "rules", e.to_string());
+            None
+        }
+    }
+}
+
+/// The names both listed in the manifest and present; every other difference is a problem.
+fn listed_files(rel: &Path, m: &ReleaseManifest, v: &mut Verdict) -> BTreeSet<String> {
+    let mut listed = BTreeSet::new();
+    for e in &m.files {
+        if let Err(msg) = plain_name(&e.name) {
+            v.fail(
+                MANIFEST,
+                None,
+                "manifest",
+                format!("file name {:?} {msg}", e.name),
+            );
+            continue;
+        }
+        let is_parquet = e.name.ends_with(".parquet");
+        if is_parquet != (e.kind == FileKind::Table) {
+            v.fail(
+                MANIFEST,
+                None,
+                "manifest",
+                format!(
+                    "{} is listed as {:?}: tables and only tables are parquet files",
+                    e.name, e.kind
+                ),
+            );
+        }
+        if e.kind == FileKind::Table && (e.rows.is_none() || e.withheld.is_none()) {
+            v.fail(
+                MANIFEST,
+                None,
+                "manifest",
+                format!("table {} has no row counts", e.name),
+            );
+        }
+        if !listed.insert(e.name.clone()) {
+            v.fail(
+                MANIFEST,
+                None,
+                "manifest",
+                format!("{} is listed twice", e.name),
+            );
+        }
+    }
+    let mut present = BTreeSet::new();
+    match std::fs::read_dir(rel) {
+        Ok(entries) => {
+            for entry in entries.flatten() {
+                let name = entry.file_name().to_string_lossy().into_owned();
+                if name == MANIFEST || name == APPROVAL {
+                    continue;
+                }
+                if !entry.file_type().is_ok_and(|t| t.is_file()) {
+                    v.fail(
+                        &name,
+                        None,
+                        "files",
+                        "is not a regular file; a release holds only files".into(),
+                    );
+                    continue;
+                }
+                if !listed.contains(&name) {
+                    v.fail(
+                        &name,
+                        None,
+                        "files",
+                        "is not listed in the manifest (a file was added)".into(),
+                    );
+                }
+                present.insert(name);
+            }
+        }
+        Err(e) => v.fail(
+            ".",
+            None,
+            "files",
+            format!("cannot list the release folder: {e}"),
+        ),
+    }
+    for name in &listed {
+        if !present.contains(name) {
+            v.fail(
+                name,
+                None,
+                "files",
+                "is listed in the manifest but missing (a file was removed)".into(),
+            );
+        }
+    }
+    listed.intersection(&present).cloned().collect()
+}
+
+fn role_name(r: &Role) -> &'static str {
+    match r {
+        Role::Dimension => "dimension",
+        Role::Patients => "patients",
+        Role::Count => "count",
+        Role::Statistic => "statistic",
+        Role::Quantile { .. } => "quantile",
+        Role::Magnitude { .. } => "magnitude",
+        Role::Contributions => "contributions",
+        Role::Support => "support",
+    }
+}
+
+fn values(a: &dyn Array) -> Option<Vec<Value>> {
+    let n = a.len();
+    let any = a.as_any();
+    let get = |i: usize, f: &dyn Fn(usize) -> Value| if a.is_null(i) { Value::Null } else { f(i) };
+    Some(match a.data_type() {
+        DataType::Int64 => {
+            let x = any.downcast_ref::<Int64Array>()?;
+            (0..n)
+                .map(|i| get(i, &|i| Value::Int(x.value(i))))
+                .collect()
+        }
+        DataType::Int32 => {
+            let x = any.downcast_ref::<Int32Array>()?;
+            (0..n)
+                .map(|i| get(i, &|i| Value::Int(x.value(i).into())))
+                .collect()
+        }
+        DataType::Float64 => {
+            let x = any.downcast_ref::<Float64Array>()?;
+            (0..n)
+                .map(|i| get(i, &|i| Value::Float(x.value(i))))
+                .collect()
+        }
+        DataType::Utf8 => {
+            let x = any.downcast_ref::<StringArray>()?;
+            (0..n)
+                .map(|i| get(i, &|i| Value::Text(x.value(i).into())))
+                .collect()
+        }
+        _ => return None,
+    })
+}
+
+/// `YYYY-MM-DD` anywhere in a text value: a date finer than a month.
+fn has_day_date(s: &str) -> bool {
+    let b = s.as_bytes();
+    let d = |i: usize| b[i].is_ascii_digit();
+    b.len() >= 10
+        && (0..=b.len() - 10).any(|i| {
+            (0..4).all(|k| d(i + k))
+                && b[i + 4] == b'-'
+                && d(i + 5)
+                && d(i + 6)
+                && b[i + 7] == b'-'
+                && d(i + 8)
+                && d(i + 9)
+        })
+}
+
+fn check_table(
+    path: &Path,
+    entry: &crate::manifest::FileEntry,
+    m: &ReleaseManifest,
+    rules: &Rules,
+    policy: &CheckPolicy,
+    v: &mut Verdict,
+) {
+    let file = entry.name.as_str();
+    let read = || -> Result<_, String> {
+        let f = std::fs::File::open(path).map_err(|e| e.to_string())?;
+        let b = ParquetRecordBatchReaderBuilder::try_new(f).map_err(|e| e.to_string())?;
+        let kv: BTreeMap<String, String> = b
+            .metadata()
+            .file_metadata()
+            .key_value_metadata()
+            .map(|kv| {
+                kv.iter()
+                    .filter_map(|k| Some((k.key.clone(), k.value.clone()?)))
+                    .collect()
+            })
+            .unwrap_or_default();
+        let schema = b.schema().clone();
+        let mut cols: Vec<Vec<Value>> = vec![Vec::new(); schema.fields().len()];
+        for batch in b.build().map_err(|e| e.to_string())? {
+            let batch = batch.map_err(|e| e.to_string())?;
+            for (c, a) in batch.columns().iter().enumerate() {
+                match values(a.as_ref()) {
+                    Some(vals) => cols[c].extend(vals),
+                    None => {
+                        return Err(format!(
+                            "column {} has type {}",
+                            schema.field(c).name(),
+                            a.data_type()
+                        ));
+                    }
+                }
+            }
+        }
+        Ok((kv, schema, cols))
+    };
+    let (kv, schema, cols) = match read() {
+        Ok(x) => x,
+        Err(e) => {
+            v.fail(file, None, "parquet", format!("cannot read: {e}"));
+            return;
+        }
+    };
+    v.tables += 1;
+    let meta = |k: &str| kv.get(&format!("{META_PREFIX}{k}"));
+    for (k, want) in [
+        ("study", &m.study),
+        ("site", &m.site),
+        ("rules_sha256", &m.disclosure_rules.sha256),
+    ] {
+        if meta(k) != Some(want) {
+            v.fail(
+                file,
+                None,
+                "metadata",
+                format!(
+                    "{META_PREFIX}{k} is {:?} but the manifest records {want:?}",
+                    meta(k)
+                ),
+            );
+        }
+    }
+    let columns: Vec<Column> = match meta("columns").map(|s| serde_json::from_str(s)) {
+        Some(Ok(c)) => c,
+        other => {
+            v.fail(
+                file,
+                None,
+                "metadata",
+                format!("{META_PREFIX}columns missing or invalid: {other:?}"),
+            );
+            return;
+        }
+    };
+    let constraints: Vec<Constraint> = match meta("constraints").map(|s| serde_json::from_str(s)) {
+        Some(Ok(c)) => c,
+        other => {
+            v.fail(
+                file,
+                None,
+                "metadata",
+                format!("{META_PREFIX}constraints missing or invalid: {other:?}"),
+            );
+            return;
+        }
+    };
+
+    // Schema: the recorded columns in order, then the disclosure column.
+    let names: Vec<&str> = schema.fields().iter().map(|f| f.name().as_str()).collect();
+    let mut expected: Vec<&str> = columns.iter().map(|c| c.name.as_str()).collect();
+    expected.push(DISCLOSURE);
+    if names != expected {
+        v.fail(
+            file,
+            None,
+            "columns",
+            format!("columns {names:?} but the metadata records {expected:?}"),
+        );
+        return;
+    }
+    let patients: Vec<usize> = (0..columns.len())
+        .filter(|&c| columns[c].role == Role::Patients)
+        .collect();
+    if patients.len() != 1 || columns[patients[0]].name != PATIENTS {
+        v.fail(
+            file,
+            None,
+            "columns",
+            format!("needs exactly one patients column, named {PATIENTS}"),
+        );
+        return;
+    }
+    let pc = patients[0];
+    let dc = columns.len();
+    let mut column_ok = true;
+    for (c, col) in columns.iter().enumerate() {
+        let field = schema.field(c);
+        let ty = ColumnType::of(field.data_type());
+        let role = role_name(&col.role);
+        match policy.columns.columns.get(&col.name) {
+            None => {
+                v.fail(
+                    file,
+                    None,
+                    "allow-list",
+                    format!(
+                        "column {} is not in {}",
+                        col.name,
+                        policy.columns.path.display()
+                    ),
+                );
+                column_ok = false;
+            }
+            Some(a) => {
+                if Some(a.column_type) != ty {
+                    v.fail(
+                        file,
+                        None,
+                        "allow-list",
+                        format!(
+                            "column {} has type {} but {} allows {:?}",
+                            col.name,
+                            field.data_type(),
+                            policy.columns.path.display(),
+                            a.column_type
+                        ),
+                    );
+                    column_ok = false;
+                }
+                if !a.roles.iter().any(|r| r == role) {
+                    v.fail(
+                        file,
+                        None,
+                        "allow-list",
+                        format!(
+                            "column {} has role {role} but {} allows {:?}",
+                            col.name,
+                            policy.columns.path.display(),
+                            a.roles
+                        ),
+                    );
+                    column_ok = false;
+                }
+            }
+        }
+        if ty == Some(ColumnType::Int64) && !matches!(col.role, Role::Patients | Role::Count) {
+            v.fail(
+                file,
+                None,
+                "int64",
+                format!("column {} is a 64-bit integer but not a count", col.name),
+            );
+            column_ok = false;
+        }
+        if matches!(col.role, Role::Contributions | Role::Support) {
+            v.fail(
+                file,
+                None,
+                "columns",
+                format!(
+                    "column {} has role {role}, which is never released",
+                    col.name
+                ),
+            );
+            column_ok = false;
+        }
+    }
+    if !matches!(schema.field(dc).data_type(), DataType::Utf8) {
+        v.fail(
+            file,
+            None,
+            "columns",
+            format!("column {DISCLOSURE} is not text"),
+        );
+        return;
+    }
+    for (c, vals) in cols.iter().enumerate() {
+        for (r, x) in vals.iter().enumerate() {
+            if let Value::Text(s) = x {
+                if has_day_date(s) {
+                    v.fail(
+                        file,
+                        Some(r),
+                        "date",
+                        format!(
+                            "column {} value {s:?} is a date finer than a month",
+                            names[c]
+                        ),
+                    );
+                }
+                if s.chars().count() > policy.columns.max_text_chars {
+                    v.fail(
+                        file,
+                        Some(r),
+                        "free-text",
+                        format!(
+                            "column {} value of {} characters is longer than {}",
+                            names[c],
+                            s.chars().count(),
+                            policy.columns.max_text_chars
+                        ),
+                    );
+                }
+            }
+        }
+    }
+    if !column_ok {
+        return;
+    }
+
+    let n = cols[dc].len();
+    v.rows += n;
+    if Some(n as u64) != entry.rows {
+        v.fail(
+            file,
+            None,
+            "manifest",
+            format!("{n} rows but the manifest records {:?}", entry.rows),
+        );
+    }
+    let mut withheld = vec![false; n];
+    let t = rules.threshold();
+    for r in 0..n {
+        let status = match &cols[dc][r] {
+            Value::Text(s) => Status::parse(s),
+            _ => None,
+        };
+        let Some(status) = status else {
+            v.fail(
+                file,
+                Some(r),
+                "disclosure",
+                format!("status {:?} is not a disclosure status", cols[dc][r]),
+            );
+            withheld[r] = true;
+            continue;
+        };
+        if status.is_withheld() {
+            withheld[r] = true;
+            for (c, col) in columns.iter().enumerate() {
+                if col.role != Role::Dimension && cols[c][r] != Value::Null {
+                    v.fail(
+                        file,
+                        Some(r),
+                        "withheld",
+                        format!(
+                            "{} row has {} = {:?}; withheld values must be null",
+                            status.label(),
+                            col.name,
+                            cols[c][r]
+                        ),
+                    );
+                }
+            }
+            continue;
+        }
+        let np = cols[pc][r].as_i64();
+        if np.is_none() {
+            v.fail(
+                file,
+                Some(r),
+                "threshold",
+                format!("released row without {PATIENTS}"),
+            );
+        }
+        let enough = np.is_some_and(|p| p >= t as i64);
+        for (c, col) in columns.iter().enumerate() {
+            let x = &cols[c][r];
+            if *x == Value::Null {
+                continue;
+            }
+            match &col.role {
+                Role::Patients | Role::Count => match x.as_i64() {
+                    Some(k) if k >= 0 && rules.count_ok(k as u64) => {}
+                    _ => v.fail(
+                        file,
+                        Some(r),
+                        if x.as_i64() == Some(0) { "zero" } else { "threshold" },
+                        format!(
+                            "{} = {x:?} but released counts must be {}at least {t} and a multiple of {}",
+                            col.name,
+                            if rules.show_zeros() { "0 or " } else { "" },
+                            rules.rounding_base().max(1)
+                        ),
+                    ),
+                },
+                Role::Statistic | Role::Magnitude { .. } if !enough => v.fail(
+                    file,
+                    Some(r),
+                    "threshold",
+                    format!("{} is released with {PATIENTS} = {np:?}, below {t}", col.name),
+                ),
+                Role::Quantile { p, n: nc } => {
+                    let obs = columns
+                        .iter()
+                        .position(|c| c.name == *nc)
+                        .and_then(|i| cols[i][r].as_i64());
+                    let ok = enough && obs.is_some_and(|o| o >= 0 && rules.quantile_ok(*p, o as u64));
+                    if !ok {
+                        v.fail(
+                            file,
+                            Some(r),
+                            "quantile",
+                            format!(
+                                "{} (p = {p}) is released with {nc} = {obs:?} and {PATIENTS} = {np:?}; needs {} observations beyond it on each side",
+                                col.name,
+                                rules.quantile_min_beyond()
+                            ),
+                        );
+                    }
+                }
+                _ => {}
+            }
+        }
+    }
+    let count = withheld.iter().filter(|&&w| w).count() as u64;
+    if Some(count) != entry.withheld {
+        v.fail(
+            file,
+            None,
+            "manifest",
+            format!(
+                "{count} withheld rows but the manifest records {:?}",
+                entry.withheld
+            ),
+        );
+    }
+
+    // Secondary suppression: each recorded constraint has 0 or ≥ 2 withheld members, for rows
+    // and for each magnitude column's null cells.
+    if let Some(c) = constraints
+        .iter()
+        .find(|c| c.total >= n || c.parts.iter().any(|&p| p >= n))
+    {
+        v.fail(
+            file,
+            None,
+            "secondary",
+            format!("constraint {c:?} refers to a row beyond {n}"),
+        );
+        return;
+    }
+    for c in unsafe_constraints(&constraints, &withheld) {
+        let lone = std::iter::once(c.total)
+            .chain(c.parts.iter().copied())
+            .find(|&r| withheld[r]);
+        v.fail(
+            file,
+            lone,
+            "secondary",
+            format!("the only withheld cell of total row {} with parts {:?}: recoverable by subtraction", c.total, c.parts),
+        );
+    }
+    for (mc, col) in columns.iter().enumerate() {
+        if !matches!(col.role, Role::Magnitude { .. }) {
+            continue;
+        }
+        let null: Vec<bool> = (0..n)
+            .map(|r| withheld[r] || cols[mc][r] == Value::Null)
+            .collect();
+        for c in unsafe_constraints(&constraints, &null) {
+            let lone = std::iter::once(c.total)
+                .chain(c.parts.iter().copied())
+                .find(|&r| null[r]);
+            v.fail(
+                file,
+                lone,
+                "secondary",
+                format!(
+                    "{} is the only null magnitude of total row {} with parts {:?}",
+                    col.name, c.total, c.parts
+                ),
+            );
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::has_day_date;
+
+    #[test]
+    fn day_dates_are_found() {
+        assert!(has_day_date("2024-03-05"));
+        assert!(has_day_date("from 2024-03-05 on"));
+        assert!(!has_day_date("2024-03"));
+        assert!(!has_day_date("2024-03 to 2024-04"));
+    }
+}
