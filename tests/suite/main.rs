@@ -6,5 +6,6 @@ mod cli;
 mod common;
 mod link;
 mod nhs;
+mod release;
 mod study;
 mod synth;
