@@ -21,6 +21,47 @@ fn demo_runs_and_reports_where_to_look() {
     );
     assert!(stdout.contains("identical to demo-data"), "{stdout}");
     assert!(stdout.contains("done: output in"), "{stdout}");
+    assert!(stdout.contains("report.html in a browser"), "{stdout}");
+    let exported = target.join("export");
+    for rel in [
+        "quillmere-mtx-monitoring",
+        "quillmere-potassium-seasonal",
+        "pooled-mtx-monitoring",
+    ] {
+        let rel = exported.join(rel);
+        for f in ["manifest.json", "approval.json", "report.html"] {
+            assert!(rel.join(f).is_file(), "{}/{f}", rel.display());
+        }
+        let o = Command::new(common::sluice_bin())
+            .current_dir(common::root())
+            .arg("check")
+            .arg(&rel)
+            .output()
+            .unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stdout));
+    }
+
+    // The pooled estimates, recomputed from the pooled release's site rows by statsmodels'
+    // combine_effects (DerSimonian-Laird), an implementation outside the project.
+    let Some(py) = std::env::var_os("SLUICE_PYTHON") else {
+        eprintln!(
+            "SLUICE_PYTHON is not set: skipping the statsmodels comparison (.ci/run sets it)"
+        );
+        return;
+    };
+    let o = Command::new(py)
+        .args(["-W", "ignore"])
+        .arg(common::root().join("crates/sluice-pool/tests/pool_statsmodels.py"))
+        .arg(exported.join("pooled-mtx-monitoring"))
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        o.status.success(),
+        "{text}{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(text.contains(" 0 mismatches"), "{text}");
 }
 
 #[test]

@@ -45,6 +45,8 @@ pub enum Command {
     },
     /// Record the IG officer's decision, bound to the exact bytes of the release.
     Approve(ApproveArgs),
+    /// Pool approved releases of the same study from several sites into one release.
+    Pool(PoolArgs),
     /// Copy a checked and approved release out of the secure area.
     Export {
         /// The release folder.
@@ -64,6 +66,19 @@ pub struct ReleaseArgs {
     #[arg(long, default_value = "standard")]
     pub rules: String,
     /// The release folder to write (must not exist, or be empty).
+    #[arg(long)]
+    pub out: PathBuf,
+}
+
+#[derive(Args, Debug)]
+pub struct PoolArgs {
+    /// Approved site releases (each must pass check and carry an approval of its exact bytes).
+    #[arg(required = true, num_args = 2..)]
+    pub releases: Vec<PathBuf>,
+    /// Disclosure rules for the pooled release: a path, or a name under <policies>/disclosure/.
+    #[arg(long, default_value = "standard")]
+    pub rules: String,
+    /// The pooled release folder to write.
     #[arg(long)]
     pub out: PathBuf,
 }
@@ -146,7 +161,7 @@ pub struct LinkArgs {
     pub files: Vec<PathBuf>,
 }
 
-#[derive(Args, Debug)]
+#[derive(Args, Debug, Clone)]
 pub struct SynthArgs {
     /// Site profile to write the extracts in: a path, or a name under <policies>/profiles/.
     #[arg(long, default_value = "quillmere")]

@@ -20,6 +20,9 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         Command::Release(a) => release(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
         Command::Check { release } => check(&cli.policies, &release),
         Command::Approve(a) => approve(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
+        Command::Pool(a) => {
+            pool(&cli.policies, &a.releases, &a.rules, &a.out).map(|_| ExitCode::SUCCESS)
+        }
         Command::Export { release, to } => {
             export(&cli.policies, &release, &to).map(|_| ExitCode::SUCCESS)
         }
@@ -130,6 +133,118 @@ fn export(policies: &Path, rel: &Path, to: &Path) -> Result<sluice_release::Expo
         r.approved_at
     );
     Ok(r)
+}
+
+/// Makes a key and links every extract of one demo site into `<secure>/store`.
+fn demo_site(
+    policies: &Path,
+    site: &str,
+    data: &Path,
+    secure: &Path,
+    quiet: bool,
+) -> Result<PathBuf> {
+    std::fs::create_dir_all(secure)?;
+    let key_path = secure.join("key");
+    let key = sluice_link::key::Key::generate(&format!("{site}-demo"))?;
+    key.save(&key_path)?;
+    if !quiet {
+        println!(
+            "      key {} (fingerprint {})",
+            key_path.display(),
+            key.fingerprint()
+        );
+    }
+    let mut files: Vec<PathBuf> = std::fs::read_dir(data.join("extracts"))?
+        .map(|e| e.map(|e| e.path()))
+        .collect::<Result<_, _>>()?;
+    files.sort();
+    let store = secure.join("store");
+    link(
+        policies,
+        &LinkArgs {
+            profile: site.into(),
+            key: key_path,
+            store: store.clone(),
+            quarantine: Some(secure.join("quarantine")),
+            tags: "dmard".into(),
+            postcodes: Some(data.join("reference/postcodes.csv")),
+            practices: Some(data.join("reference/practices.csv")),
+            keep_area: false,
+            files,
+        },
+    )?;
+    Ok(store)
+}
+
+fn measure_quiet(
+    policies: &Path,
+    study: &str,
+    store: &Path,
+    work: &Path,
+) -> Result<sluice_study::Outcome> {
+    let study = named_policy(policies, "studies", study);
+    Ok(sluice_study::measure(&sluice_study::Options {
+        study: &study,
+        policies,
+        store,
+        work,
+    })?)
+}
+
+fn approve_quiet(policies: &Path, rel: &Path, reviewer: &str) -> Result<()> {
+    sluice_release::approve(
+        rel,
+        reviewer,
+        sluice_release::Decision::Approved,
+        "demo release: synthetic data of an invented region",
+        &check_policy(policies)?,
+    )?;
+    Ok(())
+}
+
+fn pool(
+    policies: &Path,
+    inputs: &[PathBuf],
+    rules: &str,
+    out: &Path,
+) -> Result<sluice_pool::PoolReport> {
+    let rules_path = named_policy(policies, "disclosure", rules);
+    let rules = sluice_disclose::Rules::load(&rules_path)?;
+    rules.check_floor(&sluice_disclose::Floor::load(
+        &policies.join("disclosure/floor.toml"),
+    )?)?;
+    let r = sluice_pool::pool(inputs, out, &rules, &check_policy(policies)?)?;
+    if !r.verdict.passed() {
+        bail!(
+            "the pooled release {} fails its check:\n{}",
+            out.display(),
+            r.verdict
+        );
+    }
+    for (name, rows, withheld) in &r.tables {
+        println!("{name}\t{rows}\t{withheld} withheld");
+    }
+    eprintln!(
+        "pooled {} sites ({}) into {}: {} pooled estimates; check passed",
+        r.sites.len(),
+        r.sites.join(", "),
+        out.display(),
+        r.pooled_estimates
+    );
+    Ok(r)
+}
+
+fn pool_quiet(policies: &Path, inputs: &[PathBuf], out: &Path) -> Result<()> {
+    let rules = sluice_disclose::Rules::load(&policies.join("disclosure/standard.toml"))?;
+    let r = sluice_pool::pool(inputs, out, &rules, &check_policy(policies)?)?;
+    if !r.verdict.passed() {
+        bail!(
+            "the pooled release {} fails its check:\n{}",
+            out.display(),
+            r.verdict
+        );
+    }
+    Ok(())
 }
 
 fn measure(policies: &Path, a: &MeasureArgs) -> Result<sluice_study::Outcome> {
@@ -340,7 +455,7 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
     // Stage 1: the demo data is regenerated from its recorded settings and compared byte for byte,
     // which shows the generator is deterministic and the committed data is what it claims to be.
     println!(
-        "[1/3] synth: regenerating the demo data from {}",
+        "[1/7] synth: regenerating the demo data from {}",
         truth_path.display()
     );
     let c = &truth["config"];
@@ -387,58 +502,156 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
         out.display()
     );
 
-    // Stage 2: a fresh key, made the way a site makes one. It never leaves the output folder.
-    let key_path = a.out.join("secure/key");
-    std::fs::create_dir_all(a.out.join("secure"))?;
-    println!("[2/3] key: making a new pseudonymisation key");
-    key(KeyCommand::New {
-        out: key_path.clone(),
-        label: format!("{site}-demo"),
-    })?;
-
-    // Stage 3: link every monthly extract into the store.
-    println!("[3/3] link: linking {}", a.data.join("extracts").display());
-    let mut files: Vec<PathBuf> = std::fs::read_dir(a.data.join("extracts"))?
-        .map(|e| e.map(|e| e.path()))
-        .collect::<Result<_, _>>()?;
-    files.sort();
-    let store = a.out.join("secure/store");
-    let report = link(
-        policies,
-        &LinkArgs {
-            profile: site.clone(),
-            key: key_path,
-            store: store.clone(),
-            quarantine: Some(a.out.join("secure/quarantine")),
-            tags: "dmard".into(),
-            postcodes: Some(a.data.join("reference/postcodes.csv")),
-            practices: Some(a.data.join("reference/practices.csv")),
-            keep_area: false,
-            files,
-        },
-    )?;
+    // Stages 2-3: a fresh key, made the way a site makes one (it never leaves the secure folder),
+    // and every monthly extract linked into the store.
+    let secure = a.out.join("secure");
+    println!("[2/7] key and link: a new pseudonymisation key, then every monthly extract");
+    let store = demo_site(policies, &site, &a.data, &secure, false)?;
+    let m =
+        sluice_link::store::Manifest::load(&store)?.context("the demo store has no manifest")?;
     let expected = truth["expected_stored"].as_u64().unwrap_or(0);
-    if report.current_rows != expected {
+    if m.current_rows != expected {
         bail!(
             "the linked store holds {} current results but the planted truth expects {expected}",
-            report.current_rows
+            m.current_rows
         );
     }
     println!(
         "      {} current results stored, as the planted truth expects",
-        report.current_rows
+        m.current_rows
     );
+
+    // Stages 4-6: both shipped studies, each measured, released, checked, approved and exported.
+    let studies = ["mtx-monitoring", "potassium-seasonal"];
+    println!("[3/7] measure: {}", studies.join(", "));
+    for st in studies {
+        let o = measure_quiet(policies, st, &store, &secure.join("work").join(st))?;
+        println!(
+            "      {st}: {} tables{}",
+            o.tables.len(),
+            o.cohort_size
+                .map(|n| format!(", cohort of {n} patients"))
+                .unwrap_or_default()
+        );
+    }
+    println!("[4/7] release and check: disclosure control, then the independent check");
+    let releases = a.out.join("releases");
+    for st in studies {
+        let rel = releases.join(format!("{site}-{st}"));
+        let m = release(
+            policies,
+            &ReleaseArgs {
+                work: secure.join("work").join(st),
+                rules: "standard".into(),
+                out: rel.clone(),
+            },
+        )?;
+        let verdict = sluice_release::check(&rel, &check_policy(policies)?);
+        if !verdict.passed() {
+            bail!(
+                "the demo release {} fails its check:\n{verdict}",
+                rel.display()
+            );
+        }
+        println!(
+            "      {}: {} files, check passed",
+            rel.display(),
+            m.files.len()
+        );
+    }
+    println!(
+        "[5/7] approve and export: a demo reviewer signs off; export copies only what was approved"
+    );
+    for st in studies {
+        let rel = releases.join(format!("{site}-{st}"));
+        approve_quiet(policies, &rel, &format!("demo IG officer ({site})"))?;
+        let r = sluice_release::export(
+            &rel,
+            &a.out.join("export").join(format!("{site}-{st}")),
+            &check_policy(policies)?,
+        )?;
+        println!(
+            "      exported {} files to {}",
+            r.files.len(),
+            r.to.display()
+        );
+    }
+
+    // Stage 7: the monitoring study at two more invented sites, each with its own key and extract
+    // layout, then pooled from the approved releases alone.
+    println!(
+        "[6/7] two more sites: brackenholt (semicolon, Latin-1, day-first dates) and saltreach (tab, no header)"
+    );
+    let mut site_releases = vec![releases.join(format!("{site}-mtx-monitoring"))];
+    for (other, seed) in [("brackenholt", 20_260_202_u64), ("saltreach", 20_260_303)] {
+        let dir = a.out.join("sites").join(other);
+        let args = SynthArgs {
+            profile: other.into(),
+            out: dir.join("data"),
+            seed,
+            ..args.clone()
+        };
+        let (profile, analytes) = load_policies(policies, other)?;
+        sluice_synth::run(synth_config(&args)?, profile, &analytes, &args.out, |_| {})?;
+        let store = demo_site(policies, other, &args.out, &dir.join("secure"), true)?;
+        let work = dir.join("secure/work/mtx-monitoring");
+        measure_quiet(policies, "mtx-monitoring", &store, &work)?;
+        let rel = dir.join("release");
+        release(
+            policies,
+            &ReleaseArgs {
+                work,
+                rules: "standard".into(),
+                out: rel.clone(),
+            },
+        )?;
+        approve_quiet(policies, &rel, &format!("demo IG officer ({other})"))?;
+        println!(
+            "      {other}: linked, measured, released and approved ({})",
+            rel.display()
+        );
+        site_releases.push(rel);
+    }
+    println!("[7/7] pool: three approved site releases into one pooled release");
+    let pooled = releases.join("pooled-mtx-monitoring");
+    pool_quiet(policies, &site_releases, &pooled)?;
+    approve_quiet(policies, &pooled, "demo consortium lead")?;
+    let r = sluice_release::export(
+        &pooled,
+        &a.out.join("export/pooled-mtx-monitoring"),
+        &check_policy(policies)?,
+    )?;
+    println!(
+        "      {}: checked, approved and exported to {}",
+        pooled.display(),
+        r.to.display()
+    );
+
     println!();
     println!("done: output in {}", a.out.display());
     println!(
-        "  secure/store        pseudonymised results (Parquet) and manifest.json with the accounting"
+        "  secure/             inside the secure area only: key, store, quarantine, patient-level work"
     );
     println!(
-        "  secure/quarantine   rows set aside, with file, line, field, reason and the raw line"
+        "  releases/           disclosure-controlled releases (Parquet, manifest.json, report.html)"
+    );
+    println!("  export/             what left the secure area: checked and approved releases");
+    println!("  sites/              the two other invented sites of the pooled study");
+    println!();
+    println!(
+        "open {} in a browser to read the monitoring study's report,",
+        a.out
+            .join("export")
+            .join(format!("{site}-mtx-monitoring"))
+            .join("report.html")
+            .display()
     );
     println!(
-        "  secure/key          the demo's key (mode 0600); a real key never leaves the secure machine"
+        "and {} for the pooled one",
+        pooled.join("report.html").display()
     );
-    println!("  synth               the regenerated demo data");
+    println!(
+        "(a statistical summary is not clinical advice; a real release needs local IG approval)"
+    );
     Ok(ExitCode::SUCCESS)
 }

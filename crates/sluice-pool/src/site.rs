@@ -1,0 +1,253 @@
+//! Loading and verifying one site release: schema version, check, approval, and its tables.
+
+use arrow::array::{Array, Float64Array, Int32Array, Int64Array, StringArray};
+use arrow::datatypes::DataType;
+use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+use sluice_aggregate::{Column, Constraint, Value, sha256_hex};
+use sluice_release::{
+    APPROVAL, ApprovalRecord, CheckPolicy, Decision, FileKind, MANIFEST, META_PREFIX,
+    ReleaseManifest, SCHEMA_VERSION, check,
+};
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use crate::PoolError;
+
+/// One released table as read back from Parquet.
+#[derive(Clone, Debug)]
+pub(crate) struct SiteTable {
+    pub name: String,
+    pub title: String,
+    pub description: String,
+    pub columns: Vec<Column>,
+    pub rows: Vec<Vec<Value>>,
+    /// The `disclosure` label of each row.
+    pub status: Vec<String>,
+    pub constraints: Vec<Constraint>,
+}
+
+impl SiteTable {
+    pub fn column(&self, name: &str) -> Option<usize> {
+        self.columns.iter().position(|c| c.name == name)
+    }
+    pub fn withheld(&self, r: usize) -> bool {
+        self.status[r].starts_with("withheld:")
+    }
+}
+
+/// A verified site release.
+#[derive(Clone, Debug)]
+pub(crate) struct Site {
+    pub label: String,
+    pub path: PathBuf,
+    pub manifest: ReleaseManifest,
+    pub manifest_sha256: String,
+    pub tables: Vec<SiteTable>,
+}
+
+impl Site {
+    pub fn table(&self, name: &str) -> Option<&SiteTable> {
+        self.tables.iter().find(|t| t.name == name)
+    }
+    /// SHA-256 of the study policy (the provenance input with role "study").
+    pub fn study_policy_sha256(&self) -> Option<&str> {
+        self.manifest
+            .inputs
+            .iter()
+            .find(|i| i.role == "study")
+            .map(|i| i.sha256.as_str())
+    }
+}
+
+/// Reads the release at `rel`: refuses a newer (or other) schema version, a release that fails
+/// [`check`], and one without an approval of exactly its current manifest.
+pub(crate) fn load(rel: &Path, policy: &CheckPolicy) -> Result<Site, PoolError> {
+    let mpath = rel.join(MANIFEST);
+    let bytes = std::fs::read(&mpath).map_err(|source| PoolError::Io {
+        path: mpath.clone(),
+        source,
+    })?;
+    let head: serde_json::Value =
+        serde_json::from_slice(&bytes).map_err(|e| PoolError::Refused {
+            site: "?".into(),
+            path: rel.to_path_buf(),
+            message: format!("{MANIFEST} is not JSON: {e}"),
+        })?;
+    let label = head
+        .get("site")
+        .and_then(|s| s.as_str())
+        .unwrap_or("?")
+        .to_string();
+    let refuse = |message: String| PoolError::Refused {
+        site: label.clone(),
+        path: rel.to_path_buf(),
+        message,
+    };
+    let version = head.get("schema_version").and_then(|v| v.as_u64());
+    match version {
+        Some(v) if v == u64::from(SCHEMA_VERSION) => {}
+        Some(v) if v > u64::from(SCHEMA_VERSION) => {
+            return Err(PoolError::NewerSchema {
+                site: label,
+                path: rel.to_path_buf(),
+                found: v,
+                supported: SCHEMA_VERSION,
+            });
+        }
+        other => {
+            return Err(refuse(format!(
+                "release schema version {other:?} is not the version {SCHEMA_VERSION} this sluice pools"
+            )));
+        }
+    }
+    let manifest: ReleaseManifest = serde_json::from_slice(&bytes)
+        .map_err(|e| refuse(format!("{MANIFEST} is not a release manifest: {e}")))?;
+
+    let verdict = check(rel, policy);
+    if !verdict.passed() {
+        return Err(refuse(format!("the release fails check; {verdict}")));
+    }
+
+    let manifest_sha256 = sha256_hex(&bytes);
+    let apath = rel.join(APPROVAL);
+    let abytes = match std::fs::read(&apath) {
+        Ok(b) => b,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            return Err(refuse(format!(
+                "not approved: no {APPROVAL}; the IG officer must approve it first"
+            )));
+        }
+        Err(source) => {
+            return Err(PoolError::Io {
+                path: apath,
+                source,
+            });
+        }
+    };
+    let a: ApprovalRecord = serde_json::from_slice(&abytes).map_err(|e| {
+        refuse(format!(
+            "not approved: {APPROVAL} is not an approval record: {e}"
+        ))
+    })?;
+    if a.decision != Decision::Approved {
+        return Err(refuse(format!(
+            "not approved: {} rejected it: {}",
+            a.reviewer, a.note
+        )));
+    }
+    if a.manifest_sha256 != manifest_sha256 {
+        return Err(refuse(format!(
+            "not approved: {APPROVAL} approves manifest sha256 {} but {MANIFEST} has sha256 {manifest_sha256}: the approval belongs to another release or the release changed after approval",
+            a.manifest_sha256
+        )));
+    }
+
+    let mut tables = Vec::new();
+    for f in manifest.files.iter().filter(|f| f.kind == FileKind::Table) {
+        let path = rel.join(&f.name);
+        tables.push(read_table(&path).map_err(|message| refuse(format!("{}: {message}", f.name)))?);
+    }
+    Ok(Site {
+        label: manifest.site.clone(),
+        path: rel.to_path_buf(),
+        manifest,
+        manifest_sha256,
+        tables,
+    })
+}
+
+fn values(a: &dyn Array) -> Option<Vec<Value>> {
+    let n = a.len();
+    let any = a.as_any();
+    let get = |i: usize, f: &dyn Fn(usize) -> Value| if a.is_null(i) { Value::Null } else { f(i) };
+    Some(match a.data_type() {
+        DataType::Int64 => {
+            let x = any.downcast_ref::<Int64Array>()?;
+            (0..n)
+                .map(|i| get(i, &|i| Value::Int(x.value(i))))
+                .collect()
+        }
+        DataType::Int32 => {
+            let x = any.downcast_ref::<Int32Array>()?;
+            (0..n)
+                .map(|i| get(i, &|i| Value::Int(x.value(i).into())))
+                .collect()
+        }
+        DataType::Float64 => {
+            let x = any.downcast_ref::<Float64Array>()?;
+            (0..n)
+                .map(|i| get(i, &|i| Value::Float(x.value(i))))
+                .collect()
+        }
+        DataType::Utf8 => {
+            let x = any.downcast_ref::<StringArray>()?;
+            (0..n)
+                .map(|i| get(i, &|i| Value::Text(x.value(i).into())))
+                .collect()
+        }
+        _ => return None,
+    })
+}
+
+/// Reads one released table (arrow record batches) with its `sluice.*` metadata.
+pub(crate) fn read_table(path: &Path) -> Result<SiteTable, String> {
+    let f = std::fs::File::open(path).map_err(|e| e.to_string())?;
+    let b = ParquetRecordBatchReaderBuilder::try_new(f).map_err(|e| e.to_string())?;
+    let kv: BTreeMap<String, String> = b
+        .metadata()
+        .file_metadata()
+        .key_value_metadata()
+        .map(|kv| {
+            kv.iter()
+                .filter_map(|k| Some((k.key.clone(), k.value.clone()?)))
+                .collect()
+        })
+        .unwrap_or_default();
+    let meta = |k: &str| {
+        kv.get(&format!("{META_PREFIX}{k}"))
+            .cloned()
+            .ok_or_else(|| format!("no {META_PREFIX}{k} metadata"))
+    };
+    let columns: Vec<Column> =
+        serde_json::from_str(&meta("columns")?).map_err(|e| format!("columns metadata: {e}"))?;
+    let constraints: Vec<Constraint> = serde_json::from_str(&meta("constraints")?)
+        .map_err(|e| format!("constraints metadata: {e}"))?;
+    let schema = b.schema().clone();
+    let width = schema.fields().len();
+    if width != columns.len() + 1 {
+        return Err(format!(
+            "{width} columns but the metadata records {} and the disclosure column",
+            columns.len()
+        ));
+    }
+    let mut cols: Vec<Vec<Value>> = vec![Vec::new(); width];
+    for batch in b.build().map_err(|e| e.to_string())? {
+        let batch = batch.map_err(|e| e.to_string())?;
+        for (c, a) in batch.columns().iter().enumerate() {
+            cols[c].extend(values(a.as_ref()).ok_or_else(|| {
+                format!(
+                    "column {} has type {}",
+                    schema.field(c).name(),
+                    a.data_type()
+                )
+            })?);
+        }
+    }
+    let n = cols[width - 1].len();
+    let status = cols[width - 1]
+        .iter()
+        .map(|v| v.as_text().unwrap_or("").to_string())
+        .collect();
+    let rows = (0..n)
+        .map(|r| (0..columns.len()).map(|c| cols[c][r].clone()).collect())
+        .collect();
+    Ok(SiteTable {
+        name: meta("table")?,
+        title: meta("title")?,
+        description: meta("description").unwrap_or_default(),
+        columns,
+        rows,
+        status,
+        constraints,
+    })
+}
