@@ -50,7 +50,10 @@ pub mod rank;
 pub mod rate;
 pub mod ttest;
 
-pub use bootstrap::{PairedCluster, bootstrap, bootstrap_clustered, bootstrap_clustered_diff};
+pub use bootstrap::{
+    PairedCluster, bootstrap, bootstrap_clustered, bootstrap_clustered_diff,
+    bootstrap_clustered_diff_many,
+};
 pub use describe::{differences, mean, median, quantile, quantiles, sd, variance};
 pub use error::StatsError;
 pub use meta::{MetaAnalysis, Pooled, meta_analysis};

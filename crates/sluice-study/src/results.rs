@@ -274,20 +274,19 @@ pub fn distributions(ctx: &Rows<'_>) -> Result<Vec<Table>, MeasureError> {
                 };
                 let mean = |x: &[f64]| x.iter().sum::<f64>() / x.len() as f64;
                 let mut rows = Vec::new();
-                let boot = |stat: &dyn Fn(&[f64]) -> f64| {
-                    sluice_stats::bootstrap_clustered_diff(
-                        &both,
-                        stat,
-                        bs.replicates,
-                        seed,
-                        bs.level,
-                    )
-                    .ok()
-                };
-                for (name, iv) in [
-                    ("mean_difference", boot(&mean)),
-                    ("median_difference", boot(&median)),
-                ] {
+                let ivs = sluice_stats::bootstrap_clustered_diff_many(
+                    &both,
+                    &[&mean, &median],
+                    bs.replicates,
+                    seed,
+                    bs.level,
+                )
+                .ok();
+                for (k, name) in ["mean_difference", "median_difference"]
+                    .into_iter()
+                    .enumerate()
+                {
+                    let iv = ivs.as_ref().map(|v| v[k]);
                     let mut r = base.clone();
                     r.extend([
                         name.into(),
