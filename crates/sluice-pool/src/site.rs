@@ -1,7 +1,5 @@
 //! Loading and verifying one site release: schema version, check, approval, and its tables.
 
-use arrow::array::{Array, Float64Array, Int32Array, Int64Array, StringArray};
-use arrow::datatypes::DataType;
 use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
 use sluice_aggregate::{Column, Constraint, Value, sha256_hex};
 use sluice_release::{
@@ -156,39 +154,6 @@ pub(crate) fn load(rel: &Path, policy: &CheckPolicy) -> Result<Site, PoolError> 
     })
 }
 
-fn values(a: &dyn Array) -> Option<Vec<Value>> {
-    let n = a.len();
-    let any = a.as_any();
-    let get = |i: usize, f: &dyn Fn(usize) -> Value| if a.is_null(i) { Value::Null } else { f(i) };
-    Some(match a.data_type() {
-        DataType::Int64 => {
-            let x = any.downcast_ref::<Int64Array>()?;
-            (0..n)
-                .map(|i| get(i, &|i| Value::Int(x.value(i))))
-                .collect()
-        }
-        DataType::Int32 => {
-            let x = any.downcast_ref::<Int32Array>()?;
-            (0..n)
-                .map(|i| get(i, &|i| Value::Int(x.value(i).into())))
-                .collect()
-        }
-        DataType::Float64 => {
-            let x = any.downcast_ref::<Float64Array>()?;
-            (0..n)
-                .map(|i| get(i, &|i| Value::Float(x.value(i))))
-                .collect()
-        }
-        DataType::Utf8 => {
-            let x = any.downcast_ref::<StringArray>()?;
-            (0..n)
-                .map(|i| get(i, &|i| Value::Text(x.value(i).into())))
-                .collect()
-        }
-        _ => return None,
-    })
-}
-
 /// Reads one released table (arrow record batches) with its `sluice.*` metadata.
 pub(crate) fn read_table(path: &Path) -> Result<SiteTable, String> {
     let f = std::fs::File::open(path).map_err(|e| e.to_string())?;
@@ -224,7 +189,7 @@ pub(crate) fn read_table(path: &Path) -> Result<SiteTable, String> {
     for batch in b.build().map_err(|e| e.to_string())? {
         let batch = batch.map_err(|e| e.to_string())?;
         for (c, a) in batch.columns().iter().enumerate() {
-            cols[c].extend(values(a.as_ref()).ok_or_else(|| {
+            cols[c].extend(sluice_release::array_values(a.as_ref()).ok_or_else(|| {
                 format!(
                     "column {} has type {}",
                     schema.field(c).name(),

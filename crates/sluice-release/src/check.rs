@@ -442,7 +442,9 @@ fn role_name(r: &Role) -> &'static str {
     }
 }
 
-fn values(a: &dyn Array) -> Option<Vec<Value>> {
+/// The values of a released column (the four Parquet types a release uses), or `None` for any
+/// other type. Shared with pooling, which reads site releases the same way.
+pub fn array_values(a: &dyn Array) -> Option<Vec<Value>> {
     let n = a.len();
     let any = a.as_any();
     let get = |i: usize, f: &dyn Fn(usize) -> Value| if a.is_null(i) { Value::Null } else { f(i) };
@@ -518,7 +520,7 @@ fn check_table(
         for batch in b.build().map_err(|e| e.to_string())? {
             let batch = batch.map_err(|e| e.to_string())?;
             for (c, a) in batch.columns().iter().enumerate() {
-                match values(a.as_ref()) {
+                match array_values(a.as_ref()) {
                     Some(vals) => cols[c].extend(vals),
                     None => {
                         return Err(format!(

@@ -18,7 +18,9 @@ mod manifest;
 mod write;
 
 pub use approve::{ApprovalRecord, Decision, ExportReport, approve, export};
-pub use check::{AllowList, AllowedColumn, CheckPolicy, ColumnType, Problem, Verdict, check};
+pub use check::{
+    AllowList, AllowedColumn, CheckPolicy, ColumnType, Problem, Verdict, array_values, check,
+};
 pub use manifest::{
     APPROVAL, FileEntry, FileKind, MANIFEST, META_PREFIX, ReleaseManifest, RulesRecord,
     SCHEMA_VERSION,
