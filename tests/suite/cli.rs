@@ -62,6 +62,36 @@ fn demo_runs_and_reports_where_to_look() {
         String::from_utf8_lossy(&o.stderr)
     );
     assert!(text.contains(" 0 mismatches"), "{text}");
+
+    // pyarrow, an independent Parquet reader, reads every file of every exported demo release.
+    let script = r#"
+import json, pathlib, sys, pyarrow.parquet as pq
+n = 0
+for rel in sys.argv[1:]:
+    m = json.load(open(pathlib.Path(rel) / "manifest.json"))
+    for f in m["files"]:
+        if f["name"].endswith(".parquet"):
+            assert pq.read_table(pathlib.Path(rel) / f["name"]).num_rows == f["rows"], f["name"]
+            n += 1
+print(n)
+"#;
+    let mut cmd = Command::new(std::env::var_os("SLUICE_PYTHON").unwrap());
+    cmd.args(["-c", script]);
+    for rel in [
+        "quillmere-mtx-monitoring",
+        "quillmere-potassium-seasonal",
+        "pooled-mtx-monitoring",
+    ] {
+        cmd.arg(exported.join(rel));
+    }
+    let o = cmd.output().unwrap();
+    assert!(
+        o.status.success(),
+        "pyarrow: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let n: usize = String::from_utf8_lossy(&o.stdout).trim().parse().unwrap();
+    assert!(n >= 40, "pyarrow read {n} demo release tables");
 }
 
 #[test]
