@@ -2,7 +2,7 @@
 //! the travel saved by a less frequent monitoring scenario.
 
 use crate::cohort::{Member, subgroup_names};
-use crate::load::{Result_, SETTINGS};
+use crate::load::Result_;
 use crate::policy::{Dim, Study};
 use crate::results::{Rows, estimate_values};
 use crate::{MeasureError, patients_col};
@@ -86,9 +86,8 @@ pub fn critical_tables(
         }
     }
     // Cohort studies list every cell (zeros included) so a zero is a result, not a gap.
-    if let Some(ms) = members {
+    if members.is_some() {
         for g in subgroup_names(study) {
-            let _ = ms;
             for w in &study.windows {
                 let mut k = Vec::new();
                 for d in &c.by {
@@ -275,7 +274,6 @@ pub fn critical_tables(
         }
         out.push(t);
     }
-    let _ = SETTINGS;
     Ok(out)
 }
 
