@@ -1,12 +1,10 @@
 //! Loading and verifying one site release: schema version, check, approval, and its tables.
 
-use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
 use sluice_aggregate::{Column, Constraint, Value, sha256_hex};
 use sluice_release::{
     APPROVAL, ApprovalRecord, CheckPolicy, Decision, FileKind, MANIFEST, META_PREFIX,
     ReleaseManifest, SCHEMA_VERSION, check,
 };
-use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use crate::PoolError;
@@ -156,18 +154,7 @@ pub(crate) fn load(rel: &Path, policy: &CheckPolicy) -> Result<Site, PoolError> 
 
 /// Reads one released table (arrow record batches) with its `sluice.*` metadata.
 pub(crate) fn read_table(path: &Path) -> Result<SiteTable, String> {
-    let f = std::fs::File::open(path).map_err(|e| e.to_string())?;
-    let b = ParquetRecordBatchReaderBuilder::try_new(f).map_err(|e| e.to_string())?;
-    let kv: BTreeMap<String, String> = b
-        .metadata()
-        .file_metadata()
-        .key_value_metadata()
-        .map(|kv| {
-            kv.iter()
-                .filter_map(|k| Some((k.key.clone(), k.value.clone()?)))
-                .collect()
-        })
-        .unwrap_or_default();
+    let (kv, schema, cols) = sluice_release::read_released_table(path)?;
     let meta = |k: &str| {
         kv.get(&format!("{META_PREFIX}{k}"))
             .cloned()
@@ -177,26 +164,12 @@ pub(crate) fn read_table(path: &Path) -> Result<SiteTable, String> {
         serde_json::from_str(&meta("columns")?).map_err(|e| format!("columns metadata: {e}"))?;
     let constraints: Vec<Constraint> = serde_json::from_str(&meta("constraints")?)
         .map_err(|e| format!("constraints metadata: {e}"))?;
-    let schema = b.schema().clone();
     let width = schema.fields().len();
     if width != columns.len() + 1 {
         return Err(format!(
             "{width} columns but the metadata records {} and the disclosure column",
             columns.len()
         ));
-    }
-    let mut cols: Vec<Vec<Value>> = vec![Vec::new(); width];
-    for batch in b.build().map_err(|e| e.to_string())? {
-        let batch = batch.map_err(|e| e.to_string())?;
-        for (c, a) in batch.columns().iter().enumerate() {
-            cols[c].extend(sluice_release::array_values(a.as_ref()).ok_or_else(|| {
-                format!(
-                    "column {} has type {}",
-                    schema.field(c).name(),
-                    a.data_type()
-                )
-            })?);
-        }
     }
     let n = cols[width - 1].len();
     let status = cols[width - 1]

@@ -493,6 +493,45 @@ fn has_day_date(s: &str) -> bool {
         })
 }
 
+/// A released Parquet file as read by arrow-rs: its key-value metadata, its schema and every
+/// column's values. Used by `check` and by pooling, so both read releases one way.
+pub type ReleasedTable = (
+    BTreeMap<String, String>,
+    arrow::datatypes::SchemaRef,
+    Vec<Vec<Value>>,
+);
+
+pub fn read_released_table(path: &Path) -> Result<ReleasedTable, String> {
+    let f = std::fs::File::open(path).map_err(|e| e.to_string())?;
+    let b = ParquetRecordBatchReaderBuilder::try_new(f).map_err(|e| e.to_string())?;
+    let kv: BTreeMap<String, String> = b
+        .metadata()
+        .file_metadata()
+        .key_value_metadata()
+        .map(|kv| {
+            kv.iter()
+                .filter_map(|k| Some((k.key.clone(), k.value.clone()?)))
+                .collect()
+        })
+        .unwrap_or_default();
+    let schema = b.schema().clone();
+    let mut cols: Vec<Vec<Value>> = vec![Vec::new(); schema.fields().len()];
+    for batch in b.build().map_err(|e| e.to_string())? {
+        let batch = batch.map_err(|e| e.to_string())?;
+        for (c, a) in batch.columns().iter().enumerate() {
+            let vals = array_values(a.as_ref()).ok_or_else(|| {
+                format!(
+                    "column {} has type {}",
+                    schema.field(c).name(),
+                    a.data_type()
+                )
+            })?;
+            cols[c].extend(vals);
+        }
+    }
+    Ok((kv, schema, cols))
+}
+
 fn check_table(
     path: &Path,
     entry: &crate::manifest::FileEntry,
@@ -502,39 +541,7 @@ fn check_table(
     v: &mut Verdict,
 ) {
     let file = entry.name.as_str();
-    let read = || -> Result<_, String> {
-        let f = std::fs::File::open(path).map_err(|e| e.to_string())?;
-        let b = ParquetRecordBatchReaderBuilder::try_new(f).map_err(|e| e.to_string())?;
-        let kv: BTreeMap<String, String> = b
-            .metadata()
-            .file_metadata()
-            .key_value_metadata()
-            .map(|kv| {
-                kv.iter()
-                    .filter_map(|k| Some((k.key.clone(), k.value.clone()?)))
-                    .collect()
-            })
-            .unwrap_or_default();
-        let schema = b.schema().clone();
-        let mut cols: Vec<Vec<Value>> = vec![Vec::new(); schema.fields().len()];
-        for batch in b.build().map_err(|e| e.to_string())? {
-            let batch = batch.map_err(|e| e.to_string())?;
-            for (c, a) in batch.columns().iter().enumerate() {
-                match array_values(a.as_ref()) {
-                    Some(vals) => cols[c].extend(vals),
-                    None => {
-                        return Err(format!(
-                            "column {} has type {}",
-                            schema.field(c).name(),
-                            a.data_type()
-                        ));
-                    }
-                }
-            }
-        }
-        Ok((kv, schema, cols))
-    };
-    let (kv, schema, cols) = match read() {
+    let (kv, schema, cols) = match read_released_table(path) {
         Ok(x) => x,
         Err(e) => {
             v.fail(file, None, "parquet", format!("cannot read: {e}"));

@@ -19,7 +19,8 @@ mod write;
 
 pub use approve::{ApprovalRecord, Decision, ExportReport, approve, export};
 pub use check::{
-    AllowList, AllowedColumn, CheckPolicy, ColumnType, Problem, Verdict, array_values, check,
+    AllowList, AllowedColumn, CheckPolicy, ColumnType, Problem, ReleasedTable, Verdict,
+    array_values, check, read_released_table,
 };
 pub use manifest::{
     APPROVAL, FileEntry, FileKind, MANIFEST, META_PREFIX, ReleaseManifest, RulesRecord,
