@@ -383,16 +383,7 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
         col("n_intervals", Role::Count, "intervals ending in the window"),
         col("mean_days", Role::Statistic, "mean interval"),
     ];
-    for p in &iv.quantiles {
-        cols.push(col(
-            &qname(*p),
-            Role::Quantile {
-                p: *p,
-                n: "n_intervals".into(),
-            },
-            "quantile of the intervals (type 7)",
-        ));
-    }
+    cols.extend(quantile_cols(&iv.quantiles, "n_intervals", "intervals"));
     let mut t = Table::new(
         "interval_summary",
         "Monitoring intervals",
@@ -433,16 +424,7 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
         col("n_intervals", Role::Count, ""),
         col("mean_days", Role::Statistic, ""),
     ];
-    for p in &iv.quantiles {
-        cols.push(col(
-            &qname(*p),
-            Role::Quantile {
-                p: *p,
-                n: "n_intervals".into(),
-            },
-            "quantile of the intervals (type 7)",
-        ));
-    }
+    cols.extend(quantile_cols(&iv.quantiles, "n_intervals", "intervals"));
     let mut t = Table::new(
         "intervals_by_month",
         "Monitoring intervals by month",
@@ -472,6 +454,19 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
 pub fn subgroup_names(study: &Study) -> Vec<String> {
     std::iter::once(ALL.to_string())
         .chain(study.subgroups.iter().map(|g| g.name.clone()))
+        .collect()
+}
+
+/// Quantile columns at `ps` of the observations counted in column `n`.
+pub fn quantile_cols(ps: &[f64], n: &str, of: &str) -> Vec<sluice_aggregate::Column> {
+    ps.iter()
+        .map(|p| {
+            col(
+                &qname(*p),
+                Role::Quantile { p: *p, n: n.into() },
+                &format!("quantile of the {of} (type 7)"),
+            )
+        })
         .collect()
 }
 

@@ -1,7 +1,7 @@
 //! Result distributions (with the follow-up − baseline changes), worst results per patient with
 //! their paired comparisons, and who flags: the analyses of result values.
 
-use crate::cohort::{Member, qname, quantile_values, subgroup_names};
+use crate::cohort::{Member, quantile_cols, quantile_values, subgroup_names};
 use crate::load::{Result_, SETTINGS, SEXES};
 use crate::policy::{Dim, Study, Worse};
 use crate::{MeasureError, counts_table, patients_col, z};
@@ -121,16 +121,7 @@ pub fn distributions(ctx: &Rows<'_>) -> Result<Vec<Table>, MeasureError> {
         col("mean", Role::Statistic, ""),
         col("sd", Role::Statistic, "standard deviation"),
     ]);
-    for p in &d.quantiles {
-        cols.push(col(
-            &qname(*p),
-            Role::Quantile {
-                p: *p,
-                n: "n_results".into(),
-            },
-            "quantile of the results (type 7)",
-        ));
-    }
+    cols.extend(quantile_cols(&d.quantiles, "n_results", "results"));
     let mut dist = Table::new(
         "distributions",
         "Result distributions",
