@@ -4,6 +4,7 @@
 
 mod cli;
 mod common;
+mod disclosure;
 mod link;
 mod nhs;
 mod release;

@@ -7,7 +7,7 @@ use crate::link::synth_and_link;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
-fn sluice(args: &[&str]) -> std::process::Output {
+pub(crate) fn sluice(args: &[&str]) -> std::process::Output {
     let policies = common::policies();
     let mut all = vec!["--policies", policies.to_str().unwrap()];
     all.extend_from_slice(args);

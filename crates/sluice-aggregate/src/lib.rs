@@ -17,7 +17,7 @@ use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 /// Version of the candidate file format; release refuses any other.
-pub const SCHEMA_VERSION: u32 = 1;
+pub const SCHEMA_VERSION: u32 = 2;
 
 /// The dimension value that marks a total over that dimension.
 pub const ALL: &str = "all";
@@ -51,6 +51,9 @@ pub enum Role {
     Patients,
     /// Another count (results, events, specimens): released, rounded, only with its row.
     Count,
+    /// Person-time in years (patients at risk × time): released rounded to the rules'
+    /// person-time base, because person-time divided by the window length is a patient count.
+    PersonTime,
     /// A statistic (mean, SD, estimate, standard error, CI bound, p-value, rate): released only
     /// when the row has enough patients.
     Statistic,
@@ -75,6 +78,53 @@ pub struct Column {
     /// What the column means, for the report and the file metadata.
     #[serde(default)]
     pub description: String,
+    /// How finely a statistic or quantile may be released; `None` releases it as computed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub precision: Option<Precision>,
+}
+
+/// How finely a statistic is released, so that it does not pin the count beside it.
+///
+/// A mean of `n` observations recorded on a grid `g` (whole days, results to 0.1) times `n` is a
+/// multiple of `g`; released exactly, it tells which `n` of those the rounded count allows is the
+/// true one. Released as a multiple of a step `s` with `s · n ≥ g` for every `n` the rounded count
+/// allows, every such `n` has a multiple of `g` within reach, so none is singled out.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Precision {
+    /// A mean, SD or difference of observations recorded on `grid`, over the observations
+    /// counted in column `n` (a patients or count column of the same row). Quantiles are
+    /// released on the grid itself, which also hides the interpolation weight that gives n.
+    Grid {
+        grid: f64,
+        n: String,
+        /// Grids for some values of one dimension (e.g. each analyte's reporting resolution);
+        /// rows with other values use `grid`.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        by: Option<GridBy>,
+    },
+    /// A p-value or similar: released to this many significant digits.
+    Significant { digits: u32 },
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct GridBy {
+    pub dimension: String,
+    pub grids: BTreeMap<String, f64>,
+}
+
+impl Precision {
+    /// The grid of one row of `table` (for [`Precision::Grid`]).
+    pub fn grid_of(&self, table: &Table, row: &[Value]) -> Option<f64> {
+        let Precision::Grid { grid, by, .. } = self else {
+            return None;
+        };
+        let g = by.as_ref().and_then(|b| {
+            let c = table.column(&b.dimension)?;
+            b.grids.get(row[c].as_text()?).copied()
+        });
+        Some(g.unwrap_or(*grid))
+    }
 }
 
 /// One value of a cell.
@@ -160,6 +210,105 @@ pub struct Constraint {
     pub parts: Vec<usize>,
 }
 
+/// A cell of a candidate table: the table (empty for the table that holds the reference), the
+/// row index in that table as measure built it, and the column.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct CellRef {
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub table: String,
+    pub row: usize,
+    pub column: String,
+}
+
+impl CellRef {
+    /// A cell of the same table.
+    pub fn here(row: usize, column: &str) -> CellRef {
+        CellRef {
+            table: String::new(),
+            row,
+            column: column.into(),
+        }
+    }
+    /// A cell of another table.
+    pub fn of(table: &str, row: usize, column: &str) -> CellRef {
+        CellRef {
+            table: table.into(),
+            row,
+            column: column.into(),
+        }
+    }
+}
+
+/// A statistic that is an exact function of counts (or of other released values). Disclosure
+/// control never releases the value measure computed for such a cell: it recomputes it from the
+/// *released* (rounded) inputs, and withholds it when any input is withheld, so the statistic
+/// says nothing the released counts do not.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Formula {
+    /// [events, exposure]: events / exposure × `per`.
+    Rate,
+    /// [events, exposure]: exact Poisson limits of the rate, at `level`.
+    PoissonLower,
+    PoissonUpper,
+    /// [part, whole]: part / whole.
+    Share,
+    /// [part, whole]: Wilson score limits of the share, at `level`.
+    WilsonLower,
+    WilsonUpper,
+    /// [b, c] discordant counts: McNemar chi-squared with continuity correction, its p and the
+    /// exact binomial p.
+    McNemarChi2,
+    McNemarP,
+    McNemarExactP,
+    /// [events1, exposure1, events0, exposure0]: (events1/exposure1) / (events0/exposure0), and
+    /// its exact conditional-binomial limits at `level`.
+    RateRatio,
+    RateRatioLower,
+    RateRatioUpper,
+    /// [events1, exposure1, events0, exposure0]: the log rate ratio, its Wald limits at `level`,
+    /// and its SE √(1/events1 + 1/events0).
+    LogRateRatio,
+    LogRateRatioLower,
+    LogRateRatioUpper,
+    LogRateRatioSe,
+    /// [estimate, se, n]: a t interval limit estimate ∓ t(n − 1)·se at `level`, and the two-sided
+    /// p of estimate/se on n − 1 degrees of freedom, with n the released (rounded) count, so the
+    /// t quantile reveals only the rounded n.
+    TLower,
+    TUpper,
+    TPValue,
+}
+
+impl Formula {
+    /// How many inputs the formula takes.
+    pub fn arity(self) -> usize {
+        use Formula::*;
+        match self {
+            Rate | PoissonLower | PoissonUpper | Share | WilsonLower | WilsonUpper
+            | McNemarChi2 | McNemarP | McNemarExactP => 2,
+            TLower | TUpper | TPValue => 3,
+            RateRatio | RateRatioLower | RateRatioUpper | LogRateRatio | LogRateRatioLower
+            | LogRateRatioUpper | LogRateRatioSe => 4,
+        }
+    }
+}
+
+/// One derived cell of a table: `column` of `row` is `formula` of `inputs`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Derived {
+    pub row: usize,
+    pub column: String,
+    pub formula: Formula,
+    pub inputs: Vec<CellRef>,
+    /// Confidence level of an interval formula (0.95); unused otherwise.
+    #[serde(default)]
+    pub level: f64,
+    /// Scale of a rate (100 for per 100 patient-years); unused otherwise.
+    #[serde(default)]
+    pub per: f64,
+}
+
 /// How histogram rows are laid out, so that small tail bins can be merged instead of dropped.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Histogram {
@@ -187,6 +336,9 @@ pub struct Table {
     pub constraints: Vec<Constraint>,
     #[serde(default)]
     pub histogram: Option<Histogram>,
+    /// Cells that are exact functions of released values (see [`Formula`]).
+    #[serde(default)]
+    pub derived: Vec<Derived>,
 }
 
 impl Table {
@@ -199,6 +351,34 @@ impl Table {
             rows: Vec::new(),
             constraints: Vec::new(),
             histogram: None,
+            derived: Vec::new(),
+        }
+    }
+
+    /// Declares that `column` of `row` is `formula` of `inputs` (see [`Derived`]).
+    pub fn derive(
+        &mut self,
+        row: usize,
+        column: &str,
+        formula: Formula,
+        inputs: Vec<CellRef>,
+        level: f64,
+        per: f64,
+    ) {
+        self.derived.push(Derived {
+            row,
+            column: column.into(),
+            formula,
+            inputs,
+            level,
+            per,
+        });
+    }
+
+    /// Sets the release precision of a column.
+    pub fn set_precision(&mut self, column: &str, precision: Precision) {
+        if let Some(c) = self.columns.iter_mut().find(|c| c.name == column) {
+            c.precision = Some(precision);
         }
     }
 
@@ -309,6 +489,60 @@ impl Table {
                 ));
             }
         }
+        for c in &self.columns {
+            match (&c.precision, &c.role) {
+                (None, _) => {}
+                (
+                    Some(Precision::Grid { grid, n, by }),
+                    Role::Statistic | Role::Quantile { .. },
+                ) => {
+                    let grids = by.iter().flat_map(|b| b.grids.values());
+                    if std::iter::once(grid)
+                        .chain(grids)
+                        .any(|g| !(g.is_finite() && *g > 0.0))
+                    {
+                        return Err(err(format!("column {} has grid {grid}", c.name)));
+                    }
+                    let ok = self.column(n).is_some_and(|i| {
+                        matches!(self.columns[i].role, Role::Patients | Role::Count)
+                    });
+                    if !ok {
+                        return Err(err(format!(
+                            "column {} has its precision over {n}, which is not a count column",
+                            c.name
+                        )));
+                    }
+                }
+                (Some(Precision::Significant { digits }), Role::Statistic) if *digits > 0 => {}
+                (Some(p), _) => {
+                    return Err(err(format!(
+                        "column {} cannot take precision {p:?}",
+                        c.name
+                    )));
+                }
+            }
+        }
+        for d in &self.derived {
+            let col = self.column(&d.column);
+            if d.row >= self.rows.len()
+                || !col.is_some_and(|c| self.columns[c].role == Role::Statistic)
+            {
+                return Err(err(format!(
+                    "derived cell row {} column {} is not a statistic cell of the table",
+                    d.row, d.column
+                )));
+            }
+            if d.inputs.len() != d.formula.arity() {
+                return Err(err(format!(
+                    "derived cell row {} column {}: {:?} takes {} inputs, not {}",
+                    d.row,
+                    d.column,
+                    d.formula,
+                    d.formula.arity(),
+                    d.inputs.len()
+                )));
+            }
+        }
         if let Some(h) = &self.histogram {
             for n in h.group_by.iter().chain([
                 &h.lower,
@@ -352,6 +586,14 @@ pub struct Candidates {
     pub schema_version: u32,
     pub provenance: Provenance,
     pub tables: Vec<Table>,
+    /// The populations behind the tables, by name: `all` (the cohort) and each subgroup, as
+    /// sorted patient pseudonyms. For the differencing guard inside the secure area; never
+    /// released. Empty for a study without a cohort.
+    #[serde(default)]
+    pub populations: BTreeMap<String, Vec<u64>>,
+    /// The store measured, as given to measure; the release ledger is kept beside it.
+    #[serde(default)]
+    pub store: String,
 }
 
 impl Candidates {
@@ -426,6 +668,7 @@ pub fn col(name: &str, role: Role, description: &str) -> Column {
         name: name.to_string(),
         role,
         description: description.to_string(),
+        precision: None,
     }
 }
 

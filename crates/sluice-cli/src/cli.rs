@@ -38,6 +38,12 @@ pub enum Command {
     Measure(MeasureArgs),
     /// Put a study's aggregate candidates through disclosure control and write a release.
     Release(ReleaseArgs),
+    /// List the releases recorded in a store's ledger, with the populations behind them.
+    Ledger {
+        /// The store (its ledger is `<store>-ledger/ledger.json`).
+        #[arg(long)]
+        store: PathBuf,
+    },
     /// The IG officer's independent check of a release folder (exit 1 on any failure).
     Check {
         /// The release folder.
@@ -68,6 +74,9 @@ pub struct ReleaseArgs {
     /// The release folder to write (must not exist, or be empty).
     #[arg(long)]
     pub out: PathBuf,
+    /// The release ledger (default: `<store>-ledger/ledger.json` beside the store measured).
+    #[arg(long)]
+    pub ledger: Option<PathBuf>,
 }
 
 #[derive(Args, Debug)]

@@ -19,6 +19,7 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         Command::Measure(a) => measure(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
         Command::Release(a) => release(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
         Command::Check { release } => check(&cli.policies, &release),
+        Command::Ledger { store } => ledger(&store).map(|_| ExitCode::SUCCESS),
         Command::Approve(a) => approve(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
         Command::Pool(a) => {
             pool(&cli.policies, &a.releases, &a.rules, &a.out).map(|_| ExitCode::SUCCESS)
@@ -59,32 +60,139 @@ fn named_policy(policies: &Path, dir: &str, name: &str) -> PathBuf {
 
 fn release(policies: &Path, a: &ReleaseArgs) -> Result<sluice_release::ReleaseManifest> {
     let candidates = sluice_aggregate::Candidates::load(&a.work)?;
+    let candidates_path = a.work.join(sluice_aggregate::Candidates::FILE);
+    let candidates_sha256 = sluice_aggregate::sha256_hex(
+        &std::fs::read(&candidates_path)
+            .with_context(|| format!("reading {}", candidates_path.display()))?,
+    );
     let rules_path = named_policy(policies, "disclosure", &a.rules);
     let rules = sluice_disclose::Rules::load(&rules_path)?;
     let floor = sluice_disclose::Floor::load(&policies.join("disclosure/floor.toml"))?;
     rules.check_floor(&floor)?;
-    let mut checked = Vec::with_capacity(candidates.tables.len());
-    for t in &candidates.tables {
-        checked.push(sluice_disclose::control(t, &rules)?);
+    let mut checked = sluice_disclose::control_all(&candidates.tables, &rules)?;
+
+    // The differencing guard against every earlier release from the same store.
+    let ledger_path = match (&a.ledger, candidates.store.is_empty()) {
+        (Some(p), _) => Some(p.clone()),
+        (None, false) => Some(sluice_ledger::ledger_path(Path::new(&candidates.store))),
+        (None, true) => None,
+    };
+    let populations = sluice_ledger::populations(&candidates);
+    let mut ledger = match &ledger_path {
+        Some(p) => Some(sluice_ledger::Ledger::load(p)?),
+        None => None,
+    };
+    let release_name = a.out.to_string_lossy().into_owned();
+    if let Some(l) = &ledger {
+        let pairs = sluice_ledger::pairs(
+            l,
+            &populations,
+            &candidates.provenance.site,
+            &release_name,
+            rules.threshold(),
+        );
+        let g = sluice_ledger::guard(&mut checked, &populations, pairs, &rules)?;
+        for p in &g.pairs {
+            eprintln!(
+                "differencing: population {} ({} patients) differs from {} of {} (study {}) by {} patients: its rows are withheld",
+                p.population,
+                p.size,
+                p.earlier_population,
+                p.earlier_release,
+                p.earlier_study,
+                p.differ_by
+            );
+        }
     }
-    let report = crate::report::render(&candidates.provenance, &rules, &checked)?;
+
+    let mut provenance = candidates.provenance.clone();
+    provenance.inputs.push(sluice_aggregate::Input {
+        role: "candidates".into(),
+        path: candidates_path.to_string_lossy().into_owned(),
+        sha256: candidates_sha256,
+    });
+    let report = crate::report::render(&provenance, &rules, &checked)?;
     let m = sluice_release::write_release(
         &a.out,
-        &candidates.provenance,
+        &provenance,
         &rules,
         &checked,
         &[("report.html".to_string(), report.into_bytes())],
     )?;
+    let log = disclosure_log(&a.work, &a.out, &checked)?;
+    if let (Some(l), Some(p)) = (&mut ledger, &ledger_path) {
+        let sha = sluice_aggregate::sha256_hex(&m.to_bytes());
+        l.record(
+            p,
+            sluice_ledger::entry(&a.out, &sha, &candidates, &checked, populations),
+        )?;
+        eprintln!("recorded in the ledger {}", p.display());
+    }
     let withheld: usize = checked.iter().map(|t| t.withheld()).sum();
     let rows: usize = checked.iter().map(|t| t.rows().len()).sum();
     eprintln!(
-        "release {}: {} tables, {rows} rows, {withheld} withheld under {}",
+        "release {}: {} tables, {rows} rows, {withheld} withheld under {}; reasons in {}",
         a.out.display(),
         checked.len(),
-        rules_path.display()
+        rules_path.display(),
+        log.display()
     );
     eprintln!("next: sluice check {}", a.out.display());
     Ok(m)
+}
+
+/// Writes why each row and value was withheld to `<work>/disclosure-log.json`: inside the secure
+/// area, for the IG officer, never released (a released file says only `withheld`).
+fn disclosure_log(
+    work: &Path,
+    out: &Path,
+    checked: &[sluice_disclose::CheckedTable],
+) -> Result<PathBuf> {
+    let mut rows = Vec::new();
+    for t in checked {
+        for (r, s) in t.status().iter().enumerate() {
+            if s.is_withheld() {
+                rows.push(
+                    serde_json::json!({"table": t.name(), "row": r, "status": s.log_label()}),
+                );
+            }
+        }
+        for n in t.notes() {
+            rows.push(serde_json::json!({"table": t.name(), "row": n.row, "column": n.column, "status": format!("withheld:{}", n.reason)}));
+        }
+    }
+    let path = work.join("disclosure-log.json");
+    let doc = serde_json::json!({"release": out.to_string_lossy(), "withheld": rows});
+    std::fs::write(&path, serde_json::to_vec_pretty(&doc)?)
+        .with_context(|| format!("writing {}", path.display()))?;
+    Ok(path)
+}
+
+fn ledger(store: &Path) -> Result<()> {
+    let path = sluice_ledger::ledger_path(store);
+    let l = sluice_ledger::Ledger::load(&path)?;
+    if l.entries.is_empty() {
+        eprintln!("{}: no release recorded", path.display());
+    }
+    println!("made_utc\tsite\tstudy\treleased_rows\tpopulations\tmanifest_sha256\trelease");
+    for e in &l.entries {
+        let pops: Vec<String> = e
+            .populations
+            .iter()
+            .map(|p| format!("{}={}", p.name, p.size))
+            .collect();
+        println!(
+            "{}\t{}\t{}\t{}\t{}\t{}\t{}",
+            e.made_utc,
+            e.site,
+            e.study,
+            e.released_rows,
+            pops.join(","),
+            e.manifest_sha256,
+            e.release
+        );
+    }
+    Ok(())
 }
 
 fn check_policy(policies: &Path) -> Result<sluice_release::CheckPolicy> {
@@ -544,6 +652,7 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
                 work: secure.join("work").join(st),
                 rules: "standard".into(),
                 out: rel.clone(),
+                ledger: None,
             },
         )?;
         let verdict = sluice_release::check(&rel, &check_policy(policies)?);
@@ -603,6 +712,7 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
                 work,
                 rules: "standard".into(),
                 out: rel.clone(),
+                ledger: None,
             },
         )?;
         approve_quiet(policies, &rel, &format!("demo IG officer ({other})"))?;

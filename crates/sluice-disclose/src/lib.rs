@@ -42,15 +42,16 @@
 
 #![forbid(unsafe_code)]
 
+pub mod derive;
 mod histogram;
 mod rules;
 mod secondary;
 
-pub use rules::{Dominance, Floor, Rules, Secondary};
+pub use rules::{Differencing, Dominance, Floor, Rules, Secondary};
 pub use secondary::unsafe_constraints;
 
 use serde::Serialize;
-use sluice_aggregate::{AggregateError, Column, Constraint, Role, Table, Value};
+use sluice_aggregate::{AggregateError, Column, Constraint, Precision, Role, Table, Value};
 use std::path::PathBuf;
 
 /// The name of the patients column in every released table.
@@ -92,7 +93,11 @@ pub enum DiscloseError {
     },
 }
 
-/// What disclosure control did with a row; written to the release as its `disclosure` column.
+/// What disclosure control did with a row. Released files carry only [`Status::label`]
+/// (`released`, `merged` or `withheld`): one status for every withheld row whatever the reason,
+/// and no word on whether a count was rounded, because "withheld because zero" or "released
+/// unrounded" would itself tell the count. The reason stays in the secure area's log
+/// ([`Status::log_label`]).
 #[derive(Clone, Debug, PartialEq, Eq, Serialize)]
 pub enum Status {
     /// Released as computed (counts already multiples of the rounding base).
@@ -102,14 +107,26 @@ pub enum Status {
     /// Several histogram bins released as one row.
     Merged,
     /// Every non-dimension value is null; `rule` names why: `threshold`, `zero`, `secondary`,
-    /// `histogram`.
+    /// `histogram`, `differencing`.
     Withheld { rule: String },
 }
 
+/// The label every withheld row carries in a released file.
+pub const WITHHELD: &str = "withheld";
+
 impl Status {
-    /// The label written to the `disclosure` column: `released`, `rounded`, `merged`,
-    /// `withheld:<rule>`.
+    /// The label written to the `disclosure` column of a released file.
     pub fn label(&self) -> String {
+        match self {
+            Status::Released | Status::Rounded => "released".into(),
+            Status::Merged => "merged".into(),
+            Status::Withheld { .. } => WITHHELD.into(),
+        }
+    }
+
+    /// The label of the secure area's log, with the reason: `released`, `rounded`, `merged`,
+    /// `withheld:<rule>`.
+    pub fn log_label(&self) -> String {
         match self {
             Status::Released => "released".into(),
             Status::Rounded => "rounded".into(),
@@ -118,22 +135,31 @@ impl Status {
         }
     }
 
-    /// The inverse of [`Status::label`].
+    /// Reads a released file's label; a withheld row's reason is not in the file, so it comes
+    /// back as an empty rule.
     pub fn parse(label: &str) -> Option<Status> {
         match label {
             "released" => Some(Status::Released),
-            "rounded" => Some(Status::Rounded),
             "merged" => Some(Status::Merged),
-            _ => label
-                .strip_prefix("withheld:")
-                .filter(|r| !r.is_empty())
-                .map(|r| Status::Withheld { rule: r.into() }),
+            WITHHELD => Some(Status::Withheld {
+                rule: String::new(),
+            }),
+            _ => None,
         }
     }
 
     pub fn is_withheld(&self) -> bool {
         matches!(self, Status::Withheld { .. })
     }
+}
+
+/// A single value left null in a released row, and why (for the secure area's log): `derived`
+/// (an input withheld), `quantile`, `dominance`, `threshold`.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+pub struct Note {
+    pub row: usize,
+    pub column: String,
+    pub reason: String,
 }
 
 /// A table that has been through disclosure control. It can be made only by [`control`]: its
@@ -151,6 +177,9 @@ impl Status {
 ///     status: Vec::new(),
 ///     constraints: Vec::new(),
 ///     rules_sha256: String::new(),
+///     row_map: Vec::new(),
+///     notes: Vec::new(),
+///     weights: Vec::new(),
 /// };
 /// ```
 ///
@@ -172,9 +201,44 @@ pub struct CheckedTable {
     status: Vec<Status>,
     constraints: Vec<Constraint>,
     rules_sha256: String,
+    /// Candidate row → output row (histogram merging joins rows).
+    row_map: Vec<usize>,
+    notes: Vec<Note>,
+    /// Unrounded patients per output row, for secondary suppression re-run after control.
+    weights: Vec<f64>,
 }
 
 impl CheckedTable {
+    /// Values left null in released rows, with their reasons (never released).
+    pub fn notes(&self) -> &[Note] {
+        &self.notes
+    }
+    /// The output row a candidate row went to.
+    pub fn output_row(&self, candidate_row: usize) -> Option<usize> {
+        self.row_map.get(candidate_row).copied()
+    }
+    /// Withholds whole rows after control (the differencing guard); the caller re-runs
+    /// secondary suppression through [`CheckedTable::protect_again`].
+    pub fn withhold_rows(&mut self, rows: &[usize], rule: &str) {
+        for &r in rows {
+            if r < self.rows.len() && !self.status[r].is_withheld() {
+                self.status[r] = Status::Withheld { rule: rule.into() };
+                for (c, col) in self.columns.iter().enumerate() {
+                    if col.role != Role::Dimension {
+                        self.rows[r][c] = Value::Null;
+                    }
+                }
+            }
+        }
+    }
+    /// Re-applies secondary suppression over the table's constraints after rows were withheld
+    /// late, weighted by the unrounded patients as in [`control`].
+    pub fn protect_again(&mut self) {
+        let mut w: Vec<bool> = self.status.iter().map(Status::is_withheld).collect();
+        let weight = self.weights.clone();
+        let added = secondary::protect(&self.constraints, &mut w, &weight);
+        self.withhold_rows(&added, "secondary");
+    }
     pub fn name(&self) -> &str {
         &self.name
     }
@@ -272,8 +336,25 @@ fn withhold(status: &mut [Option<Status>], r: usize, rule: &str) {
 }
 
 /// Applies the disclosure rules to one candidate table. See the crate documentation for the
-/// method and its limits.
+/// method and its limits. A table whose derived cells refer to other tables needs
+/// [`control_all`].
 pub fn control(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseError> {
+    let mut v = control_all(std::slice::from_ref(table), rules)?;
+    Ok(v.pop().expect("one table"))
+}
+
+/// Applies the disclosure rules to every table of a release, then recomputes every derived cell
+/// from the released values of all of them ([`derive`]).
+pub fn control_all(tables: &[Table], rules: &Rules) -> Result<Vec<CheckedTable>, DiscloseError> {
+    let mut out = tables
+        .iter()
+        .map(|t| control_one(t, rules))
+        .collect::<Result<Vec<_>, _>>()?;
+    derive::apply(tables, &mut out, rules)?;
+    Ok(out)
+}
+
+fn control_one(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseError> {
     table.validate()?;
     let pc = table.patients_column().expect("validated");
     if let Some(c) = table.column(PATIENTS)
@@ -365,11 +446,24 @@ pub fn control(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseErr
 
     let mut out_rows = Vec::with_capacity(n);
     let mut out_status = Vec::with_capacity(n);
+    let mut notes = Vec::new();
     for r in 0..n {
         let mut row = Vec::new();
         let mut rounded = false;
+        let released_count = |name: &str| -> Option<u64> {
+            let c = table.column(name)?;
+            let raw = rows[r][c].as_i64()?;
+            Some(rules.round_count(raw.max(0) as u64))
+        };
         for (c, column) in table.columns.iter().enumerate() {
             let v = &rows[r][c];
+            let mut note = |reason: &str| {
+                notes.push(Note {
+                    row: r,
+                    column: column.name.clone(),
+                    reason: reason.into(),
+                })
+            };
             let released = match &column.role {
                 Role::Contributions | Role::Support => continue,
                 Role::Dimension => v.clone(),
@@ -380,8 +474,37 @@ pub fn control(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseErr
                     rounded |= y != x;
                     Value::Int(y as i64)
                 }
-                Role::Statistic if patients[r] >= t => v.clone(),
-                Role::Statistic => Value::Null,
+                Role::PersonTime => match v.as_f64() {
+                    Some(x) if x.is_finite() && x >= 0.0 && patients[r] >= t => {
+                        let y = rules.round_person_time(x);
+                        rounded |= y != x;
+                        Value::float(y)
+                    }
+                    Some(x) if !(x.is_finite() && x >= 0.0) => {
+                        return Err(DiscloseError::Value {
+                            table: table.name.clone(),
+                            row: r,
+                            column: column.name.clone(),
+                            message: format!("{x} is not a person-time"),
+                        });
+                    }
+                    _ => Value::Null,
+                },
+                Role::Statistic if patients[r] >= t => match (&column.precision, v.as_f64()) {
+                    (Some(p), Some(x)) => {
+                        let n = match p {
+                            Precision::Grid { n, .. } => released_count(n),
+                            Precision::Significant { .. } => None,
+                        };
+                        let g = p.grid_of(table, &rows[r]);
+                        Value::opt(derive::released_precision(x, p, g, false, n, rules))
+                    }
+                    _ => v.clone(),
+                },
+                Role::Statistic => {
+                    note("threshold");
+                    Value::Null
+                }
                 Role::Quantile { p, n: nc } => {
                     let nc = table.column(nc).expect("validated");
                     let ok = patients[r] >= t
@@ -394,7 +517,17 @@ pub fn control(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseErr
                             }
                             _ => false,
                         };
-                    if ok { v.clone() } else { Value::Null }
+                    match (ok, &column.precision, v.as_f64()) {
+                        (false, _, _) => {
+                            note("quantile");
+                            Value::Null
+                        }
+                        (true, Some(prec), Some(x)) => {
+                            let g = prec.grid_of(table, &rows[r]);
+                            Value::opt(derive::released_precision(x, prec, g, true, None, rules))
+                        }
+                        (true, _, _) => v.clone(),
+                    }
                 }
                 Role::Magnitude { .. } => {
                     let null = &magnitude_null
@@ -402,7 +535,12 @@ pub fn control(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseErr
                         .find(|(m, _)| *m == c)
                         .expect("built")
                         .1;
-                    if null[r] { Value::Null } else { v.clone() }
+                    if null[r] {
+                        note("dominance");
+                        Value::Null
+                    } else {
+                        v.clone()
+                    }
                 }
             };
             row.push(released);
@@ -414,7 +552,6 @@ pub fn control(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseErr
             None => Status::Released,
         });
     }
-
     let columns = table
         .columns
         .iter()
@@ -442,6 +579,9 @@ pub fn control(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseErr
         status: out_status,
         constraints,
         rules_sha256: rules.sha256().to_string(),
+        row_map: merged.map,
+        notes,
+        weights: patients.iter().map(|&p| p as f64).collect(),
     })
 }
 

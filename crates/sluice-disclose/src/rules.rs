@@ -29,6 +29,26 @@ pub enum Secondary {
     None,
 }
 
+/// What a release does with a cell whose population differs from an earlier released cell's by
+/// fewer patients than the threshold (a differencing pair).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Differencing {
+    /// Withhold the new cell (its reason names the earlier release).
+    Withhold,
+    /// Refuse the whole release, naming the cell and the earlier release.
+    Refuse,
+}
+
+impl Differencing {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Differencing::Withhold => "withhold",
+            Differencing::Refuse => "refuse",
+        }
+    }
+}
+
 impl Secondary {
     pub fn as_str(self) -> &'static str {
         match self {
@@ -47,6 +67,8 @@ struct RulesToml {
     quantile_min_beyond: u64,
     p_percent: f64,
     secondary: Secondary,
+    person_time_base: f64,
+    differencing: Differencing,
     dominance: Dominance,
 }
 
@@ -60,6 +82,8 @@ pub struct Rules {
     quantile_min_beyond: u64,
     p_percent: f64,
     secondary: Secondary,
+    person_time_base: f64,
+    differencing: Differencing,
     dominance: Dominance,
     path: PathBuf,
     text: String,
@@ -107,6 +131,15 @@ impl Rules {
                 format!("{} is not a percentage in (0, 100]", t.dominance.k),
             ));
         }
+        if !(t.person_time_base.is_finite() && t.person_time_base >= 0.0) {
+            return Err(bad(
+                "person_time_base",
+                format!(
+                    "{} is not a non-negative number of years",
+                    t.person_time_base
+                ),
+            ));
+        }
         if !(t.p_percent >= 0.0 && t.p_percent.is_finite()) {
             return Err(bad(
                 "p_percent",
@@ -120,6 +153,8 @@ impl Rules {
             quantile_min_beyond: t.quantile_min_beyond,
             p_percent: t.p_percent,
             secondary: t.secondary,
+            person_time_base: t.person_time_base,
+            differencing: t.differencing,
             dominance: t.dominance,
             path: path.to_path_buf(),
             text: text.to_string(),
@@ -151,6 +186,23 @@ impl Rules {
     }
     pub fn dominance(&self) -> Dominance {
         self.dominance
+    }
+    /// Released person-time (years) is a multiple of this (0: no rounding).
+    pub fn person_time_base(&self) -> f64 {
+        self.person_time_base
+    }
+    /// What happens to a cell that differs from an earlier release's by a few patients.
+    pub fn differencing(&self) -> Differencing {
+        self.differencing
+    }
+    /// The released value of a person-time: the nearest multiple of the person-time base (ties
+    /// up). Person-time over a window's length is a patient count, so it is rounded like one.
+    pub fn round_person_time(&self, years: f64) -> f64 {
+        let b = self.person_time_base;
+        if b <= 0.0 {
+            return years;
+        }
+        (years / b + 0.5).floor() * b
     }
     /// The file the rules were read from.
     pub fn path(&self) -> &Path {
@@ -265,6 +317,13 @@ impl Rules {
                 format!("at least {}", floor.min_p_percent),
             );
         }
+        if self.person_time_base < floor.min_person_time_base {
+            return below(
+                "person_time_base",
+                self.person_time_base.to_string(),
+                format!("at least {}", floor.min_person_time_base),
+            );
+        }
         if floor.require_secondary == Secondary::Margins && self.secondary != Secondary::Margins {
             return below(
                 "secondary",
@@ -286,6 +345,7 @@ struct FloorToml {
     dominance_min_n: usize,
     dominance_max_k: f64,
     min_p_percent: f64,
+    min_person_time_base: f64,
     require_secondary: Secondary,
 }
 
@@ -302,6 +362,8 @@ pub struct Floor {
     pub dominance_min_n: usize,
     pub dominance_max_k: f64,
     pub min_p_percent: f64,
+    /// Released person-time must be rounded to at least this many years.
+    pub min_person_time_base: f64,
     pub require_secondary: Secondary,
     pub path: PathBuf,
 }
@@ -328,6 +390,7 @@ impl Floor {
             dominance_min_n: t.dominance_min_n,
             dominance_max_k: t.dominance_max_k,
             min_p_percent: t.min_p_percent,
+            min_person_time_base: t.min_person_time_base,
             require_secondary: t.require_secondary,
             path: path.to_path_buf(),
         })

@@ -22,8 +22,9 @@ fn unrounded() -> Rules {
     rules(&[("rounding_base = 5", "rounding_base = 1")])
 }
 
+/// The secure log's labels, which keep the reason.
 fn labels(t: &CheckedTable) -> Vec<String> {
-    t.status().iter().map(Status::label).collect()
+    t.status().iter().map(Status::log_label).collect()
 }
 
 fn counts_table(name: &str, dims: &[&str]) -> Table {
@@ -475,17 +476,208 @@ fn constraints_follow_merged_rows() {
 }
 
 #[test]
-fn status_labels_round_trip() {
-    for s in [
-        Status::Released,
-        Status::Rounded,
-        Status::Merged,
-        Status::Withheld {
-            rule: "secondary".into(),
-        },
+fn released_labels_say_only_released_merged_or_withheld() {
+    // Common practice: one status for every withheld cell; "rounded" and the reason would each
+    // tell something about the count.
+    let withheld = |rule: &str| Status::Withheld { rule: rule.into() };
+    assert_eq!(Status::Released.label(), "released");
+    assert_eq!(Status::Rounded.label(), "released");
+    assert_eq!(Status::Merged.label(), "merged");
+    for rule in [
+        "threshold",
+        "zero",
+        "secondary",
+        "histogram",
+        "differencing",
     ] {
-        assert_eq!(Status::parse(&s.label()), Some(s));
+        assert_eq!(withheld(rule).label(), "withheld");
+        assert_eq!(withheld(rule).log_label(), format!("withheld:{rule}"));
     }
-    assert_eq!(Status::parse("withheld:"), None);
-    assert_eq!(Status::parse("ok"), None);
+    assert!(Status::parse("withheld").is_some_and(|s| s.is_withheld()));
+    assert_eq!(Status::parse("released"), Some(Status::Released));
+    for bad in ["withheld:zero", "rounded", "ok"] {
+        assert_eq!(Status::parse(bad), None, "{bad}");
+    }
+}
+
+/// A crossings table (as worst_abnormal) and a McNemar table whose cells are derived from it.
+fn crossings_and_mcnemar(b: i64, c: i64) -> Vec<Table> {
+    use sluice_aggregate::{CellRef, Formula};
+    let mut x = Table::new(
+        "crossings",
+        "crossings",
+        "",
+        vec![dim("crossing", ""), col("patients", Role::Patients, "")],
+    );
+    for (name, n) in [
+        ("normal_both", 60),
+        ("abnormal_after_only", c),
+        ("abnormal_before_only", b),
+        ("abnormal_both", 20),
+        (ALL, 80 + b + c),
+    ] {
+        x.push(vec![name.into(), Value::Int(n)]);
+    }
+    x.constraints.push(Constraint {
+        total: 4,
+        parts: vec![0, 1, 2, 3],
+    });
+    let mut m = Table::new(
+        "mcnemar",
+        "mcnemar",
+        "",
+        vec![
+            dim("analyte", ""),
+            col("patients", Role::Patients, ""),
+            col("chi2_corrected", Role::Statistic, ""),
+            col("p_exact", Role::Statistic, ""),
+        ],
+    );
+    let exact = sluice_stats::mcnemar(b as u64, c as u64).unwrap();
+    m.push(vec![
+        "alt".into(),
+        Value::Int(80 + b + c),
+        Value::Float(exact.chi2_corrected),
+        Value::Float(exact.p_exact),
+    ]);
+    let inputs = vec![
+        CellRef::of("crossings", 2, "patients"),
+        CellRef::of("crossings", 1, "patients"),
+    ];
+    m.derive(
+        0,
+        "chi2_corrected",
+        Formula::McNemarChi2,
+        inputs.clone(),
+        0.0,
+        0.0,
+    );
+    m.derive(0, "p_exact", Formula::McNemarExactP, inputs, 0.0, 0.0);
+    vec![x, m]
+}
+
+// Crafted; the statistic inherits the suppression of its counts (common practice in output
+// checking; Hundepool et al. 2012 §4.4). b = 21, c = 8: the cell of 8 is withheld, so McNemar's
+// test is withheld with it instead of giving the 8 back.
+#[test]
+fn a_statistic_of_a_withheld_count_is_withheld() {
+    let out = control_all(&crossings_and_mcnemar(21, 8), &rules(&[])).unwrap();
+    assert!(out[0].status()[1].is_withheld());
+    let m = &out[1];
+    assert!(!m.status()[0].is_withheld());
+    assert_eq!(m.rows()[0][2], Value::Null);
+    assert_eq!(m.rows()[0][3], Value::Null);
+    assert!(m.notes().iter().any(|n| n.reason == "derived"));
+}
+
+// Crafted: b = 23, c = 12 are released as 25 and 10; the test is computed from those, so the
+// χ² an outsider inverts gives 25 and 10, not 23 and 12.
+#[test]
+fn a_statistic_of_released_counts_uses_the_rounded_counts() {
+    let out = control_all(&crossings_and_mcnemar(23, 12), &rules(&[])).unwrap();
+    let want = sluice_stats::mcnemar(25, 10).unwrap();
+    assert_eq!(out[1].rows()[0][2], Value::Float(want.chi2_corrected));
+    assert_eq!(out[1].rows()[0][3], Value::Float(want.p_exact));
+}
+
+// Crafted: person-time is rounded to the rules' base (5 years), and the rate and its exact
+// Poisson limits are computed from the rounded events (15) and person-time (50).
+#[test]
+fn rates_come_from_rounded_events_and_person_time() {
+    use sluice_aggregate::{CellRef, Formula};
+    let mut t = Table::new(
+        "rates",
+        "rates",
+        "",
+        vec![
+            dim("window", ""),
+            col("patients", Role::Patients, ""),
+            col("n_events", Role::Count, ""),
+            col("person_years", Role::PersonTime, ""),
+            col("rate", Role::Statistic, ""),
+            col("lower", Role::Statistic, ""),
+        ],
+    );
+    t.push(vec![
+        "w".into(),
+        Value::Int(12),
+        Value::Int(13),
+        Value::Float(48.0),
+        Value::Float(13.0 / 48.0 * 100.0),
+        Value::Null,
+    ]);
+    let inputs = vec![
+        CellRef::here(0, "n_events"),
+        CellRef::here(0, "person_years"),
+    ];
+    t.derive(0, "rate", Formula::Rate, inputs.clone(), 0.95, 100.0);
+    t.derive(0, "lower", Formula::PoissonLower, inputs, 0.95, 100.0);
+    let c = control(&t, &rules(&[])).unwrap();
+    let row = &c.rows()[0];
+    assert_eq!(row[2], Value::Int(15));
+    assert_eq!(row[3], Value::Float(50.0));
+    assert_eq!(row[4], Value::Float(30.0));
+    let ci = sluice_stats::poisson_exact_ci(15, 0.5, 0.95).unwrap();
+    assert_eq!(row[5], Value::Float(ci.lower));
+}
+
+// Crafted: a mean of whole days over 87 intervals (released as 85) is released at a step of 0.1
+// (1 / 83 rounded up to a power of ten), so each of 83..87 intervals stays possible.
+#[test]
+fn means_are_released_at_a_step_that_keeps_every_count_possible() {
+    use sluice_aggregate::Precision;
+    let mut t = Table::new(
+        "iv",
+        "iv",
+        "",
+        vec![
+            dim("window", ""),
+            col("patients", Role::Patients, ""),
+            col("n_intervals", Role::Count, ""),
+            col("mean_days", Role::Statistic, ""),
+        ],
+    );
+    t.push(vec![
+        "w".into(),
+        Value::Int(40),
+        Value::Int(87),
+        Value::Float(4321.0 / 87.0),
+    ]);
+    t.set_precision(
+        "mean_days",
+        Precision::Grid {
+            grid: 1.0,
+            n: "n_intervals".into(),
+            by: None,
+        },
+    );
+    let c = control(&t, &rules(&[])).unwrap();
+    assert_eq!(c.rows()[0][3], Value::Float(49.7));
+    for n in 83..=87 {
+        let s: f64 = 49.7 * n as f64;
+        assert!((s - s.round()).abs() <= 0.05 * n as f64, "n = {n}");
+    }
+}
+
+// Crafted: a withheld zero does not protect the small cell beside it. Parts 0 (zero), 4 (small)
+// and 30, 31 under a total of 65: the zero and the 4 are withheld, and since the zero protects
+// nothing, the smallest other part (30) is withheld too.
+#[test]
+fn a_withheld_zero_is_not_protection() {
+    let mut t = counts_table("bands", &["band"]);
+    for (b, n) in [("a", 0), ("b", 4), ("c", 30), ("d", 31), (ALL, 65)] {
+        t.push(vec![b.into(), Value::Int(n), Value::Int(n), Value::Null]);
+    }
+    t.add_margin_constraints("band").unwrap();
+    let c = control(&t, &unrounded()).unwrap();
+    assert_eq!(
+        labels(&c),
+        [
+            "withheld:zero",
+            "withheld:threshold",
+            "withheld:secondary",
+            "released",
+            "released"
+        ]
+    );
 }

@@ -17,7 +17,7 @@
 //!   are dropped: means and quantiles do not add. Site patients are assumed distinct (a patient
 //!   belongs to one site).
 //! - **Cells withheld at a site**: where any site withheld a cell (or lacks it), the pooled cell is
-//!   withheld too. Disclosure control marks it `withheld:threshold` (the candidate carries a count
+//!   withheld too. Disclosure control marks it `withheld` (the candidate carries a count
 //!   below the threshold as the marker); which sites withheld it is recorded in the separate table
 //!   `pooled_withheld` (`source_table`, `pooled_row` = row index in the pooled table, `withheld_at`
 //!   = site labels joined by "+", `n_patients` = the sum at the sites that released it, a lower

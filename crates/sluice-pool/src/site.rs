@@ -27,7 +27,7 @@ impl SiteTable {
         self.columns.iter().position(|c| c.name == name)
     }
     pub fn withheld(&self, r: usize) -> bool {
-        self.status[r].starts_with("withheld:")
+        self.status[r] == sluice_disclose::WITHHELD
     }
 }
 

@@ -72,10 +72,11 @@ pub struct AllowList {
     pub path: PathBuf,
 }
 
-const ROLES: [&str; 6] = [
+const ROLES: [&str; 7] = [
     "dimension",
     "patients",
     "count",
+    "person_time",
     "statistic",
     "quantile",
     "magnitude",
@@ -167,7 +168,7 @@ impl Verdict {
         self.problems.is_empty()
     }
 
-    fn fail(&mut self, file: &str, row: Option<usize>, rule: &str, message: String) {
+    pub(crate) fn fail(&mut self, file: &str, row: Option<usize>, rule: &str, message: String) {
         self.problems.push(Problem {
             file: file.into(),
             row,
@@ -258,6 +259,7 @@ pub fn check(rel: &Path, policy: &CheckPolicy) -> Verdict {
     }
     let rules = manifest_rules(&m, policy, &mut v);
     let listed = listed_files(rel, &m, &mut v);
+    let mut seen = Vec::new();
 
     for entry in &m.files {
         if !listed.contains(&entry.name) {
@@ -300,13 +302,62 @@ pub fn check(rel: &Path, policy: &CheckPolicy) -> Verdict {
         match entry.kind {
             FileKind::Extra => v.unchecked.push(entry.name.clone()),
             FileKind::Table => {
-                if let Some(rules) = &rules {
-                    check_table(&path, entry, &m, rules, policy, &mut v);
+                if let Some(rules) = &rules
+                    && let Some(t) = check_table(&path, entry, &m, rules, policy, &mut v)
+                {
+                    seen.push(t);
                 }
             }
         }
     }
+    if let Some(rules) = &rules {
+        crate::attack::run(&seen, rules, &mut v);
+    }
     v
+}
+
+/// A table as check read it, for the attacks that look across columns and tables.
+pub(crate) struct Seen {
+    /// File name without `.parquet`.
+    pub name: String,
+    pub columns: Vec<Column>,
+    /// Values by column, then row.
+    pub cols: Vec<Vec<Value>>,
+    pub withheld: Vec<bool>,
+}
+
+impl Seen {
+    pub fn col(&self, name: &str) -> Option<usize> {
+        self.columns.iter().position(|c| c.name == name)
+    }
+    pub fn rows(&self) -> usize {
+        self.withheld.len()
+    }
+    pub fn text(&self, r: usize, name: &str) -> Option<&str> {
+        self.cols[self.col(name)?][r].as_text()
+    }
+    pub fn num(&self, r: usize, name: &str) -> Option<f64> {
+        self.cols[self.col(name)?][r].as_f64()
+    }
+}
+
+/// A released count obeys the rules: at least the threshold and a multiple of the rounding base,
+/// or 0 where zeros are shown. Check's own reading of the rules, not the release code's.
+pub(crate) fn count_ok(k: i64, rules: &Rules) -> bool {
+    if k == 0 {
+        return rules.show_zeros();
+    }
+    let base = rules.rounding_base().max(1) as i64;
+    k >= rules.threshold() as i64 && k % base == 0
+}
+
+/// x is a whole multiple of step (to a relative 1e-9).
+pub(crate) fn is_multiple(x: f64, step: f64) -> bool {
+    if step <= 0.0 {
+        return true;
+    }
+    let k = x / step;
+    (k - k.round()).abs() <= 1e-6_f64.max(1e-9 * k.abs())
 }
 
 /// The rules recorded in the manifest, if they are intact; held to the floor.
@@ -434,6 +485,7 @@ fn role_name(r: &Role) -> &'static str {
         Role::Dimension => "dimension",
         Role::Patients => "patients",
         Role::Count => "count",
+        Role::PersonTime => "person_time",
         Role::Statistic => "statistic",
         Role::Quantile { .. } => "quantile",
         Role::Magnitude { .. } => "magnitude",
@@ -539,13 +591,13 @@ fn check_table(
     rules: &Rules,
     policy: &CheckPolicy,
     v: &mut Verdict,
-) {
+) -> Option<Seen> {
     let file = entry.name.as_str();
     let (kv, schema, cols) = match read_released_table(path) {
         Ok(x) => x,
         Err(e) => {
             v.fail(file, None, "parquet", format!("cannot read: {e}"));
-            return;
+            return None;
         }
     };
     v.tables += 1;
@@ -576,7 +628,7 @@ fn check_table(
                 "metadata",
                 format!("{META_PREFIX}columns missing or invalid: {other:?}"),
             );
-            return;
+            return None;
         }
     };
     let constraints: Vec<Constraint> = match meta("constraints").map(|s| serde_json::from_str(s)) {
@@ -588,7 +640,7 @@ fn check_table(
                 "metadata",
                 format!("{META_PREFIX}constraints missing or invalid: {other:?}"),
             );
-            return;
+            return None;
         }
     };
 
@@ -603,7 +655,7 @@ fn check_table(
             "columns",
             format!("columns {names:?} but the metadata records {expected:?}"),
         );
-        return;
+        return None;
     }
     let patients: Vec<usize> = (0..columns.len())
         .filter(|&c| columns[c].role == Role::Patients)
@@ -615,7 +667,7 @@ fn check_table(
             "columns",
             format!("needs exactly one patients column, named {PATIENTS}"),
         );
-        return;
+        return None;
     }
     let pc = patients[0];
     let dc = columns.len();
@@ -699,7 +751,7 @@ fn check_table(
             "columns",
             format!("column {DISCLOSURE} is not text"),
         );
-        return;
+        return None;
     }
     for (c, vals) in cols.iter().enumerate() {
         for (r, x) in vals.iter().enumerate() {
@@ -732,7 +784,7 @@ fn check_table(
         }
     }
     if !column_ok {
-        return;
+        return None;
     }
 
     let n = cols[dc].len();
@@ -796,9 +848,35 @@ fn check_table(
             if *x == Value::Null {
                 continue;
             }
+            if let Value::Float(f) = x
+                && !f.is_finite()
+            {
+                v.fail(
+                    file,
+                    Some(r),
+                    "value",
+                    format!("{} = {f} is not a finite number", col.name),
+                );
+                continue;
+            }
             match &col.role {
+                Role::PersonTime => {
+                    let y = x.as_f64().unwrap_or(-1.0);
+                    let base = rules.person_time_base();
+                    if y < 0.0 || !is_multiple(y, base) || !enough {
+                        v.fail(
+                            file,
+                            Some(r),
+                            "person-time",
+                            format!(
+                                "{} = {y} but released person-time is a non-negative multiple of {base} years, in a row with at least {t} patients",
+                                col.name
+                            ),
+                        );
+                    }
+                }
                 Role::Patients | Role::Count => match x.as_i64() {
-                    Some(k) if k >= 0 && rules.count_ok(k as u64) => {}
+                    Some(k) if count_ok(k, rules) => {}
                     _ => v.fail(
                         file,
                         Some(r),
@@ -822,7 +900,12 @@ fn check_table(
                         .iter()
                         .position(|c| c.name == *nc)
                         .and_then(|i| cols[i][r].as_i64());
-                    let ok = enough && obs.is_some_and(|o| o >= 0 && rules.quantile_ok(*p, o as u64));
+                    let q = rules.quantile_min_beyond() as f64;
+                    let ok = enough
+                        && (0.0..=1.0).contains(p)
+                        && obs.is_some_and(|o| {
+                            o >= 0 && (p.min(1.0 - p) * o as f64 + 1e-9).floor() >= q
+                        });
                     if !ok {
                         v.fail(
                             file,
@@ -840,6 +923,7 @@ fn check_table(
             }
         }
     }
+    crate::attack::sanity(file, &columns, &cols, v);
     let count = withheld.iter().filter(|&&w| w).count() as u64;
     if Some(count) != entry.withheld {
         v.fail(
@@ -865,7 +949,7 @@ fn check_table(
             "secondary",
             format!("constraint {c:?} refers to a row beyond {n}"),
         );
-        return;
+        return None;
     }
     for c in unsafe_constraints(&constraints, &withheld) {
         let lone = std::iter::once(c.total)
@@ -900,6 +984,12 @@ fn check_table(
             );
         }
     }
+    Some(Seen {
+        name: file.trim_end_matches(".parquet").to_string(),
+        columns,
+        cols,
+        withheld,
+    })
 }
 
 #[cfg(test)]

@@ -13,6 +13,7 @@
 #![forbid(unsafe_code)]
 
 mod approve;
+mod attack;
 mod check;
 mod manifest;
 mod write;

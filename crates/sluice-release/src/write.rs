@@ -41,7 +41,7 @@ fn arrow_type(t: &CheckedTable, c: usize) -> Result<DataType, ReleaseError> {
     };
     match column.role {
         Role::Patients | Role::Count => return Ok(DataType::Int64),
-        Role::Statistic | Role::Quantile { .. } | Role::Magnitude { .. } => {
+        Role::Statistic | Role::PersonTime | Role::Quantile { .. } | Role::Magnitude { .. } => {
             return Ok(DataType::Float64);
         }
         Role::Contributions | Role::Support => {

@@ -128,6 +128,38 @@ pub const CAUTIONS: [&str; 4] = [
      control, and charts drawn from them. No patient-level data is in this file.",
 ];
 
+/// What disclosure control closes and what it cannot see, in plain words for the IG officer.
+pub const CHANNELS_CLOSED: [&str; 6] = [
+    "Small cells: a count of fewer patients than the threshold, or of none, is withheld; every \
+     released count is rounded to the rounding base, and a withheld row says only \"withheld\", \
+     never why.",
+    "Subtraction: where a total and its parts are released, at least two cells with patients \
+     are withheld in any relation that has one withheld (a withheld zero does not count).",
+    "Statistics that give counts back: rates, shares, confidence limits, standard errors and test \
+     statistics that are functions of counts are computed from the released, rounded counts, \
+     and withheld with them; person-time is rounded; t intervals use the rounded n; means and \
+     quantiles are released only as finely as keeps every count the rounding allows possible.",
+    "Fixed categories: tables of combinations list every combination, occurring or not, so a \
+     row's presence says nothing.",
+    "Near-identical releases: a release whose cohort or a subgroup differs from one released \
+     before from the same store by fewer patients than the threshold has those rows withheld \
+     (or is refused), as recorded in the store's release ledger.",
+    "The independent check re-derives the counts each statistic implies and fails any release \
+     where they are not released counts.",
+];
+
+/// What stays open: the reviewer must judge these.
+pub const CHANNELS_OPEN: [&str; 4] = [
+    "Releases made with other tools, from another store, or before the ledger existed; and \
+     what an outsider already knows about particular patients.",
+    "Bounds: rounding and suppression hide exact values, but a withheld cell can still be \
+     bounded between values (for two withheld cells, their sum to within the rounding).",
+    "Differences between cells over narrower sets than a cohort or subgroup (a window, an \
+     analyte) in two releases whose cohorts are the same.",
+    "Rank-based intervals and bootstrap intervals are released as computed; they do not invert \
+     to counts by a formula, but they are not rounded.",
+];
+
 /// The whole report as one HTML document.
 pub fn render(meta: &ReportMeta, tables: &[CheckedTable], zones: &[ShadeZone]) -> String {
     let mut out = String::with_capacity(64 * 1024);
@@ -153,6 +185,15 @@ pub fn render(meta: &ReportMeta, tables: &[CheckedTable], zones: &[ShadeZone]) -
     html::contents(&mut out, tables);
     html::about(&mut out, meta, tables);
     tables::summary(&mut out, tables);
+    out.push_str("<section id=\"channels\">\n<h2>What disclosure control protects against</h2>\n<p>Closed:</p>\n<ul>\n");
+    for c in CHANNELS_CLOSED {
+        let _ = writeln!(out, "<li>{}</li>", escape(c));
+    }
+    out.push_str("</ul>\n<p>Not closed, for the reviewer to judge:</p>\n<ul>\n");
+    for c in CHANNELS_OPEN {
+        let _ = writeln!(out, "<li>{}</li>", escape(c));
+    }
+    out.push_str("</ul>\n</section>\n");
     if let Some(flow) = tables.iter().find(|t| t.name() == "cohort_flow") {
         tables::cohort_flow(&mut out, flow);
     }

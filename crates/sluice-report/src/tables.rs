@@ -10,43 +10,65 @@ use std::fmt::Write as _;
 /// The marker for a withheld value.
 pub(crate) const DASH: &str = "—";
 
-/// Per table: rows released, rounded, merged and withheld (by rule).
+/// Why a row or value was withheld, as the report names it. Too few patients and no patients
+/// are one reason here: counting the empty cells of a table apart would say which withheld cells
+/// are zero.
+fn reason(rule: &str) -> &str {
+    match rule {
+        "threshold" | "zero" => "small or empty",
+        r => r,
+    }
+}
+
+/// Per table: rows released, merged and withheld (by reason), and single values withheld in
+/// released rows (by reason).
 pub(crate) fn summary(out: &mut String, tables: &[CheckedTable]) {
     out.push_str("<section id=\"disclosure\">\n<h2>Disclosure summary</h2>\n");
     out.push_str(
         "<p class=\"note\">Rows of each released table by what disclosure control did with them. \
-         A withheld row has every value other than its dimensions withheld; the rule is named \
-         (threshold: too few patients; zero: no patients; secondary: withheld so that another \
-         withheld cell cannot be recovered by subtraction; histogram: the whole histogram has too \
-         few patients). Merged rows are histogram bins released together.</p>\n",
+         Every withheld row carries the same status, <code>withheld</code>, whatever the reason, and \
+         its values other than its dimensions are null; the reasons are counted here for the \
+         reviewer (small or empty: fewer patients than the threshold, or none; secondary: withheld \
+         so that another withheld cell cannot be recovered by subtraction; histogram: the whole \
+         histogram has too few patients; differencing: the row's population differs from one \
+         released before from the same store by fewer patients than the threshold). Values withheld \
+         inside released rows: derived (a statistic computed from a withheld count), quantile (too \
+         few observations beyond it), dominance (one or two patients make up most of a total). \
+         Merged rows are histogram bins released together. Released counts are rounded; which ones \
+         changed is not said.</p>\n",
     );
     out.push_str(
-        "<table>\n<thead><tr><th>table</th><th>rows</th><th>released</th><th>rounded</th><th>merged</th><th>withheld</th><th>withheld by rule</th></tr></thead>\n<tbody>\n",
+        "<table>\n<thead><tr><th>table</th><th>rows</th><th>released</th><th>merged</th><th>withheld</th><th>withheld rows by reason</th><th>values withheld in released rows</th></tr></thead>\n<tbody>\n",
     );
     for t in tables {
-        let (mut released, mut rounded, mut merged) = (0usize, 0usize, 0usize);
+        let (mut released, mut merged) = (0usize, 0usize);
         let mut rules: BTreeMap<&str, usize> = BTreeMap::new();
         for s in t.status() {
             match s {
-                Status::Released => released += 1,
-                Status::Rounded => rounded += 1,
+                Status::Released | Status::Rounded => released += 1,
                 Status::Merged => merged += 1,
-                Status::Withheld { rule } => *rules.entry(rule.as_str()).or_default() += 1,
+                Status::Withheld { rule } => *rules.entry(reason(rule)).or_default() += 1,
             }
         }
-        let by_rule = rules
-            .iter()
-            .map(|(r, n)| format!("{r}: {n}"))
-            .collect::<Vec<_>>()
-            .join(", ");
+        let mut cells: BTreeMap<&str, usize> = BTreeMap::new();
+        for n in t.notes() {
+            *cells.entry(reason(&n.reason)).or_default() += 1;
+        }
+        let list = |m: &BTreeMap<&str, usize>| {
+            m.iter()
+                .map(|(r, n)| format!("{r}: {n}"))
+                .collect::<Vec<_>>()
+                .join(", ")
+        };
         let _ = writeln!(
             out,
-            "<tr><td><a href=\"#t-{}\">{}</a></td><td class=\"n\">{}</td><td class=\"n\">{released}</td><td class=\"n\">{rounded}</td><td class=\"n\">{merged}</td><td class=\"n\">{}</td><td>{}</td></tr>",
+            "<tr><td><a href=\"#t-{}\">{}</a></td><td class=\"n\">{}</td><td class=\"n\">{released}</td><td class=\"n\">{merged}</td><td class=\"n\">{}</td><td>{}</td><td>{}</td></tr>",
             escape(t.name()),
             escape(t.name()),
             t.rows().len(),
             t.withheld(),
-            escape(&by_rule)
+            escape(&list(&rules)),
+            escape(&list(&cells))
         );
     }
     out.push_str("</tbody>\n</table>\n</section>\n");
@@ -70,7 +92,7 @@ pub(crate) fn cohort_flow(out: &mut String, t: &CheckedTable) {
         match v.num(r, n) {
             Some(x) => format!("{} patients", crate::view::num(x)),
             None => match &t.status()[r] {
-                Status::Withheld { rule } => format!("{DASH} (withheld: {rule})"),
+                Status::Withheld { .. } => format!("{DASH} (withheld)"),
                 _ => DASH.to_string(),
             },
         }
@@ -179,8 +201,7 @@ pub(crate) fn full(out: &mut String, t: &CheckedTable) {
         let (class, text) = match status {
             Status::Withheld { .. } => ("status-withheld", format!("⛔ {}", status.label())),
             Status::Merged => ("status-merged", "merged bins".to_string()),
-            Status::Rounded => ("status-rounded", status.label()),
-            Status::Released => ("status-released", status.label()),
+            Status::Rounded | Status::Released => ("status-released", status.label()),
         };
         let _ = writeln!(
             out,

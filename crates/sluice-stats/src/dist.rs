@@ -36,7 +36,7 @@ fn standard_normal() -> Normal {
 }
 
 /// Upper `1 − α/2` point of the standard normal for a two-sided interval at `level`.
-pub(crate) fn z_two_sided(level: f64) -> f64 {
+pub fn z_two_sided(level: f64) -> f64 {
     standard_normal().inverse_cdf(0.5 + level / 2.0)
 }
 
@@ -49,9 +49,15 @@ pub(crate) fn normal_sf(z: f64) -> f64 {
 }
 
 /// Upper `1 − α/2` point of Student's t with `df` degrees of freedom.
-pub(crate) fn t_two_sided(df: f64, level: f64) -> Result<f64> {
+pub fn t_two_sided(df: f64, level: f64) -> Result<f64> {
     let t = StudentsT::new(0.0, 1.0, df).map_err(|e| StatsError::Distribution(e.to_string()))?;
     Ok(t.inverse_cdf(0.5 + level / 2.0))
+}
+
+/// Two-sided p of a t statistic on `df` degrees of freedom: 2·P(T > |t|).
+pub fn t_p_two_sided(t: f64, df: f64) -> Result<f64> {
+    let d = StudentsT::new(0.0, 1.0, df).map_err(|e| StatsError::Distribution(e.to_string()))?;
+    Ok(2.0 * d.sf(t.abs()))
 }
 
 /// Quantile of Gamma(shape, rate 1); for shape k this is half the chi-square quantile on 2k df.

@@ -55,6 +55,7 @@ pub use bootstrap::{
     bootstrap_clustered_diff_many,
 };
 pub use describe::{differences, mean, median, quantile, quantiles, sd, variance};
+pub use dist::{t_p_two_sided, t_two_sided, z_two_sided};
 pub use error::StatsError;
 pub use meta::{MetaAnalysis, Pooled, meta_analysis};
 pub use proportion::{McNemar, clopper_pearson_ci, mcnemar, wilson_ci};

@@ -258,7 +258,7 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
             col("n_events", Role::Count, "monitoring events"),
             col(
                 "person_years",
-                Role::Statistic,
+                Role::PersonTime,
                 "cohort size times window length (365.25-day years)",
             ),
         ],
@@ -412,6 +412,7 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
             t.push(row);
         }
     }
+    day_precision(&mut t, &iv.quantiles);
     out.push(t);
 
     // Intervals by calendar month of the event that ends them, over the whole history.
@@ -447,8 +448,23 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
         row.extend(quantile_values(&xs, &iv.quantiles));
         t.push(row);
     }
+    day_precision(&mut t, &iv.quantiles);
     out.push(t);
     Ok(out)
+}
+
+/// Intervals are whole days: the mean is released at a step that does not pin n_intervals, the
+/// quantiles in whole days.
+fn day_precision(t: &mut Table, quantiles: &[f64]) {
+    let p = sluice_aggregate::Precision::Grid {
+        grid: 1.0,
+        n: "n_intervals".into(),
+        by: None,
+    };
+    t.set_precision("mean_days", p.clone());
+    for q in quantiles {
+        t.set_precision(&qname(*q), p.clone());
+    }
 }
 
 pub fn subgroup_names(study: &Study) -> Vec<String> {

@@ -6,8 +6,8 @@ use crate::load::Result_;
 use crate::policy::{Dim, Study};
 use crate::results::{Rows, estimate_values};
 use crate::{MeasureError, patients_col};
-use sluice_aggregate::{ALL, Role, Table, Value, col, dim};
-use std::collections::{BTreeMap, HashSet};
+use sluice_aggregate::{ALL, CellRef, Formula, Role, Table, Value, col, dim};
+use std::collections::{BTreeMap, HashMap, HashSet};
 
 /// One critical result of the study population.
 #[derive(Clone, Copy, Debug)]
@@ -123,7 +123,7 @@ pub fn critical_tables(
         cols.extend([
             col(
                 "person_years",
-                Role::Statistic,
+                Role::PersonTime,
                 "patients at risk times window length",
             ),
             col(
@@ -157,7 +157,25 @@ pub fn critical_tables(
         })
     };
     let level = study.bootstrap.level;
+    // Row of each (key, context), for the rate ratio's inputs.
+    let mut row_of: HashMap<(Vec<String>, &str), usize> = HashMap::new();
     for ((k, ctxn), (n, ps)) in &cells {
+        row_of.insert((k.clone(), *ctxn), t.rows.len());
+        if rates {
+            // Rate and limits from the released events and the rounded person-time.
+            let r = t.rows.len();
+            let inputs = vec![
+                CellRef::here(r, "n_events"),
+                CellRef::here(r, "person_years"),
+            ];
+            for (c, f) in [
+                ("rate_per_100py", Formula::Rate),
+                ("lower", Formula::PoissonLower),
+                ("upper", Formula::PoissonUpper),
+            ] {
+                t.derive(r, c, f, inputs.clone(), level, 100.0);
+            }
+        }
         let mut row: Vec<Value> = k.iter().map(|x| x.as_str().into()).collect();
         row.extend([(*ctxn).into(), ps.len().into(), (*n).into()]);
         if rates {
@@ -183,6 +201,8 @@ pub fn critical_tables(
         }
         t.push(row);
     }
+    // all = monitoring + other: a withheld context must not be the total minus the other.
+    t.add_margin_constraints("context")?;
     let mut out = vec![t];
 
     if let (true, Some((b, a))) = (rates, study.compare) {
@@ -234,6 +254,47 @@ pub fn critical_tables(
                     ps.insert(e.patient);
                 }
                 let rr = sluice_stats::rate_ratio_exact_ci(x1, t1, x0, t0, level).ok();
+                // Both rows are recomputed at release from critical_results' released events and
+                // person-time of the two windows (withheld with them): the SE √(1/x1 + 1/x0)
+                // of exact counts gives both counts.
+                let key = |w: usize| -> Vec<String> {
+                    c.by.iter()
+                        .map(|d| match d {
+                            Dim::Subgroup => g.clone(),
+                            _ => study.windows[w].name.clone(),
+                        })
+                        .collect()
+                };
+                let cell = |w: usize, col: &str| {
+                    row_of
+                        .get(&(key(w), ctxn))
+                        .map(|&r| CellRef::of("critical_results", r, col))
+                };
+                let inputs: Option<Vec<CellRef>> = [
+                    cell(a, "n_events"),
+                    cell(a, "person_years"),
+                    cell(b, "n_events"),
+                    cell(b, "person_years"),
+                ]
+                .into_iter()
+                .collect();
+                let inputs = inputs.ok_or_else(|| {
+                    MeasureError::Store(format!(
+                        "critical_rate_ratio: no critical_results row for subgroup {g}, context {ctxn}"
+                    ))
+                })?;
+                let (rr_row, log_row) = (t.rows.len(), t.rows.len() + 1);
+                for (row, col, f) in [
+                    (rr_row, "estimate", Formula::RateRatio),
+                    (rr_row, "lower", Formula::RateRatioLower),
+                    (rr_row, "upper", Formula::RateRatioUpper),
+                    (log_row, "estimate", Formula::LogRateRatio),
+                    (log_row, "lower", Formula::LogRateRatioLower),
+                    (log_row, "upper", Formula::LogRateRatioUpper),
+                    (log_row, "se", Formula::LogRateRatioSe),
+                ] {
+                    t.derive(row, col, f, inputs.clone(), level, 0.0);
+                }
                 let mut r: Vec<Value> = vec![
                     g.as_str().into(),
                     ctxn.into(),
@@ -406,5 +467,15 @@ pub fn travel_tables(study: &Study, members: &[Member], trips: &[Trip]) -> Vec<T
             top(co2),
         ]);
     }
+    // Tests per patient in the window are whole numbers: their mean per year is on a grid of
+    // 1 / window length, and released at a step that does not pin n_patients.
+    out.set_precision(
+        "mean_tests_per_year",
+        sluice_aggregate::Precision::Grid {
+            grid: 1.0 / study.windows[t.window].years(),
+            n: "n_patients".into(),
+            by: None,
+        },
+    );
     vec![out]
 }

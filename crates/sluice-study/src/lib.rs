@@ -213,6 +213,8 @@ pub fn measure(opts: &Options<'_>) -> Result<Outcome, MeasureError> {
             inputs,
         },
         tables,
+        populations: populations(members),
+        store: display(opts.store),
     };
     for t in &candidates.tables {
         t.validate()?;
@@ -233,6 +235,21 @@ pub fn measure(opts: &Options<'_>) -> Result<Outcome, MeasureError> {
         rows_read: rows.len(),
         timings,
     })
+}
+
+/// The cohort (`all`) and each subgroup as sorted pseudonyms.
+fn populations(members: Option<&[cohort::Member]>) -> std::collections::BTreeMap<String, Vec<u64>> {
+    let mut out: std::collections::BTreeMap<String, Vec<u64>> = Default::default();
+    for m in members.unwrap_or_default() {
+        for g in &m.subgroups {
+            out.entry(g.clone()).or_default().push(m.patient);
+        }
+    }
+    for v in out.values_mut() {
+        v.sort_unstable();
+        v.dedup();
+    }
+    out
 }
 
 fn display(p: &Path) -> String {

@@ -6,7 +6,9 @@ use crate::load::{Result_, SETTINGS, SEXES};
 use crate::policy::{Dim, Study, Worse};
 use crate::{MeasureError, counts_table, patients_col, z};
 use rayon::prelude::*;
-use sluice_aggregate::{ALL, Histogram, Role, Table, Value, col, dim};
+use sluice_aggregate::{
+    ALL, CellRef, Formula, GridBy, Histogram, Precision, Role, Table, Value, col, dim,
+};
 use sluice_stats::{PairedCluster, RankMethod};
 use std::collections::{BTreeMap, BTreeSet, HashMap, HashSet};
 
@@ -18,6 +20,8 @@ pub struct Rows<'a> {
     pub subgroups: HashMap<u64, &'a [String]>,
     /// Patient → age band (age at the patient's first row considered).
     pub age_band: HashMap<u64, String>,
+    /// Each study analyte's result grid ([`analyte_grids`]).
+    pub grids: Vec<f64>,
 }
 
 impl<'a> Rows<'a> {
@@ -40,6 +44,7 @@ impl<'a> Rows<'a> {
             rows,
             subgroups,
             age_band,
+            grids: analyte_grids(study, rows),
         }
     }
 
@@ -94,6 +99,51 @@ type TestCounts = (u64, u64, HashSet<u64>, HashSet<u64>);
 struct Cell {
     values: Vec<f64>,
     patients: Vec<u64>,
+}
+
+/// The finest decimal grid each study analyte's results are recorded on: 10^-d for the most
+/// decimals any of its results has (up to 6). A sum of results is a multiple of it, which is what
+/// the release precision of means must not give away.
+pub fn analyte_grids(study: &Study, rows: &[Result_]) -> Vec<f64> {
+    let mut decimals = vec![0i32; study.analytes.len()];
+    for r in rows {
+        let Some(d) = decimals.get_mut(r.analyte as usize) else {
+            continue;
+        };
+        while *d < 6 {
+            let scaled = r.value * 10f64.powi(*d);
+            if (scaled - scaled.round()).abs() <= 1e-6 * scaled.abs().max(1.0) {
+                break;
+            }
+            *d += 1;
+        }
+    }
+    decimals.into_iter().map(|d| 10f64.powi(-d)).collect()
+}
+
+/// Release precision over the observations counted in `n`, with each analyte's own grid (rows
+/// of another analyte use the coarsest, which only rounds more).
+pub fn analyte_precision(study: &Study, grids: &[f64], n: &str) -> Precision {
+    let map: BTreeMap<String, f64> = study
+        .analytes
+        .iter()
+        .zip(grids)
+        .map(|(a, g)| (a.id.clone(), *g))
+        .collect();
+    Precision::Grid {
+        grid: grids.iter().copied().fold(1.0, f64::max),
+        n: n.into(),
+        by: Some(GridBy {
+            dimension: "analyte".into(),
+            grids: map,
+        }),
+    }
+}
+
+/// p-values are released to two significant digits: exact p-values of rank and t tests depend
+/// on n and can single out the count. Common practice in reporting (two significant digits).
+pub fn p_precision() -> Precision {
+    Precision::Significant { digits: 2 }
 }
 
 pub fn distributions(ctx: &Rows<'_>) -> Result<Vec<Table>, MeasureError> {
@@ -201,6 +251,14 @@ pub fn distributions(ctx: &Rows<'_>) -> Result<Vec<Table>, MeasureError> {
             ]);
             hist.push(hrow);
         }
+    }
+    let prec = analyte_precision(study, &ctx.grids, "n_results");
+    for c in ["mean", "sd"]
+        .into_iter()
+        .map(String::from)
+        .chain(d.quantiles.iter().map(|p| crate::cohort::qname(*p)))
+    {
+        dist.set_precision(&c, prec.clone());
     }
     let mut out = vec![dist, hist];
 
@@ -339,6 +397,12 @@ pub fn distributions(ctx: &Rows<'_>) -> Result<Vec<Table>, MeasureError> {
         );
         for r in rows.into_iter().flatten() {
             t.push(r);
+        }
+        // Over the patients with results in both windows: fewer than the results, so the step
+        // is at least as coarse as the results' count would need.
+        let prec = analyte_precision(study, &ctx.grids, "n_patients");
+        for c in ["estimate", "lower", "upper", "se"] {
+            t.set_precision(c, prec.clone());
         }
         out.push(t);
     }
@@ -498,6 +562,24 @@ pub fn worst_tables(
                 ]
             };
             let t = sluice_stats::paired_t_ci(&y, &x, level).ok();
+            // The t limits and p are recomputed at release from the released estimate, SE and
+            // rounded n: from exact ones, (upper − estimate) / se is a t quantile that gives n.
+            let tr = paired.rows.len();
+            let here = |c: &str| CellRef::here(tr, c);
+            for (c, f) in [
+                ("lower", Formula::TLower),
+                ("upper", Formula::TUpper),
+                ("p_value", Formula::TPValue),
+            ] {
+                paired.derive(
+                    tr,
+                    c,
+                    f,
+                    vec![here("estimate"), here("se"), here("n_patients")],
+                    level,
+                    0.0,
+                );
+            }
             let mut r = base("mean_difference", "paired t");
             r.extend(match t {
                 Some(t) => vec![
@@ -563,6 +645,17 @@ pub fn worst_tables(
                     parts: (start..start + 4).collect(),
                 });
                 let m = sluice_stats::mcnemar(n4[2] as u64, n4[1] as u64).ok();
+                // From the released discordant cells of worst_abnormal, or withheld with them.
+                let mr = mcn.rows.len();
+                let b = CellRef::of("worst_abnormal", start + 2, "n_patients");
+                let c = CellRef::of("worst_abnormal", start + 1, "n_patients");
+                for (col, f) in [
+                    ("chi2_corrected", Formula::McNemarChi2),
+                    ("p_value", Formula::McNemarP),
+                    ("p_exact", Formula::McNemarExactP),
+                ] {
+                    mcn.derive(mr, col, f, vec![b.clone(), c.clone()], 0.0, 0.0);
+                }
                 mcn.push(vec![
                     g.as_str().into(),
                     an.id.as_str().into(),
@@ -575,6 +668,15 @@ pub fn worst_tables(
             }
         }
     }
+    let prec = analyte_precision(study, &ctx.grids, "n_patients");
+    for c in ["mean_before", "mean_after", "estimate", "se"] {
+        paired.set_precision(c, prec.clone());
+    }
+    // Hodges-Lehmann rows: their limits are order statistics of Walsh averages, on half the grid.
+    for c in ["lower", "upper"] {
+        paired.set_precision(c, prec.clone());
+    }
+    paired.set_precision("p_value", p_precision());
     Ok(vec![paired, crossing, mcn])
 }
 
@@ -583,6 +685,9 @@ fn paired_t_p(est: f64, se: f64, df: f64) -> Option<f64> {
     let t = StudentsT::new(0.0, 1.0, df).ok()?;
     Some(2.0 * t.sf((est / se).abs()))
 }
+
+/// flag_combinations lists all 2^k combinations of a set's k analytes.
+const MAX_COMBINATION_ANALYTES: usize = 10;
 
 /// Who flags: patients with an abnormal result by age band and sex, the share of tests flagged,
 /// the combinations of flagged analytes per patient, and the overlap between threshold sets.
@@ -687,6 +792,24 @@ pub fn flags(ctx: &Rows<'_>) -> Result<Vec<Table>, MeasureError> {
         for (a, (n, k, ps, fps)) in &tests[s] {
             let id = study.analytes[*a as usize].id.as_str();
             let w = sluice_stats::wilson_ci(*k, *n, study.bootstrap.level).ok();
+            // Share and limits from the released (rounded) flagged and total tests.
+            let yes = t.rows.len();
+            let part = CellRef::here(yes, "n_tests");
+            let whole = CellRef::here(yes + 1, "n_tests");
+            for (c, f) in [
+                ("share", Formula::Share),
+                ("lower", Formula::WilsonLower),
+                ("upper", Formula::WilsonUpper),
+            ] {
+                t.derive(
+                    yes,
+                    c,
+                    f,
+                    vec![part.clone(), whole.clone()],
+                    study.bootstrap.level,
+                    0.0,
+                );
+            }
             t.push(vec![
                 set.name.as_str().into(),
                 id.into(),
@@ -718,7 +841,32 @@ pub fn flags(ctx: &Rows<'_>) -> Result<Vec<Table>, MeasureError> {
         &["threshold_set", "combination"],
     );
     for (s, set) in study.threshold_sets.iter().enumerate() {
+        // Every combination the set can flag is listed, occurring or not, so that a row's
+        // presence says nothing about a patient.
+        let ids: Vec<u16> = (0..study.analytes.len() as u16)
+            .filter(|a| set.rules.contains_key(&study.analytes[*a as usize].id))
+            .collect();
+        if ids.len() > MAX_COMBINATION_ANALYTES {
+            return Err(MeasureError::Store(format!(
+                "threshold set {} flags {} analytes; flag_combinations lists every combination and allows at most {MAX_COMBINATION_ANALYTES}",
+                set.name,
+                ids.len()
+            )));
+        }
         let mut combos: BTreeMap<String, usize> = BTreeMap::new();
+        for mask in 0u32..1 << ids.len() {
+            let name = if mask == 0 {
+                "none".to_string()
+            } else {
+                ids.iter()
+                    .enumerate()
+                    .filter(|(i, _)| mask & (1 << i) != 0)
+                    .map(|(_, a)| study.analytes[*a as usize].id.as_str())
+                    .collect::<Vec<_>>()
+                    .join("+")
+            };
+            combos.insert(name, 0);
+        }
         for p in patients.keys() {
             let c = match flagged[s].get(p) {
                 Some(fs) => fs

@@ -54,7 +54,7 @@ fn counts_sum_and_site_withheld_cells_stay_withheld() {
     // follow_up: alpha a=30, b=40; beta a=5 (withheld), b=40 → a withheld, b = 80.
     let fa = row(&names, &rows, "follow_up", "a");
     assert_eq!(get(&names, fa, "n_patients"), &Value::Null);
-    assert!(matches!(get(&names, fa, "disclosure"), Value::Text(s) if s.starts_with("withheld:")));
+    assert!(matches!(get(&names, fa, "disclosure"), Value::Text(s) if s == "withheld"));
     let fb = row(&names, &rows, "follow_up", "b");
     // Secondary suppression at beta withheld one more of its follow_up cells, so at most one of
     // b and all is released; whatever is released is the sum of both sites.

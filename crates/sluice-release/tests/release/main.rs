@@ -4,4 +4,5 @@
 mod approval;
 mod check;
 mod common;
+mod leaks;
 mod write;
