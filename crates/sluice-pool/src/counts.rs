@@ -1,10 +1,13 @@
 //! Count tables: pooled cells are sums of the sites' released cells, keyed by dimension values.
 
-use sluice_aggregate::{Constraint, Role, Table, Value, col, dim};
+use sluice_aggregate::{CellRef, Constraint, Formula, Role, Table, Value, col, dim};
 use std::collections::BTreeMap;
 
 use crate::site::SiteTable;
 use crate::{MARKER, PoolError, key, site_list};
+
+/// Confidence level of pooled Poisson limits.
+const RATE_LEVEL: f64 = 0.95;
 
 /// Which sites withheld each pooled cell, for the `pooled_withheld` table.
 #[derive(Default)]
@@ -73,7 +76,7 @@ pub(crate) fn pool(
         .filter(|&c| {
             matches!(
                 t.columns[c].role,
-                Role::Dimension | Role::Patients | Role::Count
+                Role::Dimension | Role::Patients | Role::Count | Role::PersonTime
             )
         })
         .collect();
@@ -114,6 +117,11 @@ pub(crate) fn pool(
         lookup.push(m);
     }
 
+    // Rates are pooled as the summed events over the summed person-time, computed at release
+    // from the pooled (released) sums like any rate.
+    let rates = ["n_events", "person_years", "rate_per_100py"]
+        .iter()
+        .all(|n| t.columns.iter().any(|c| c.name == *n));
     let mut columns = Vec::new();
     for &c in &keep {
         columns.push(t.columns[c].clone());
@@ -132,14 +140,32 @@ pub(crate) fn pool(
     if !dropped.is_empty() {
         description.push_str(&format!(
             " Site statistics not pooled (they do not add): {}.",
-            dropped.join(", ")
+            dropped
+                .iter()
+                .filter(|d| !(rates && ["rate_per_100py", "lower", "upper"].contains(d)))
+                .copied()
+                .collect::<Vec<_>>()
+                .join(", ")
         ));
+    }
+    if rates {
+        for (n, d) in [
+            (
+                "rate_per_100py",
+                "pooled events per 100 pooled patient-years",
+            ),
+            ("lower", "exact Poisson lower limit (95%)"),
+            ("upper", "exact Poisson upper limit (95%)"),
+        ] {
+            columns.push(col(n, Role::Statistic, d));
+        }
+        description.push_str(" Rates are the pooled events over the pooled person-time.");
     }
     let mut out = Table::new(&t.name, &t.title, &description, columns);
 
     for (p, (k_, dvals)) in order.iter().enumerate() {
         let mut missing: Vec<String> = Vec::new();
-        let mut sums: Vec<i64> = vec![0; keep.len()];
+        let mut sums: Vec<f64> = vec![0.0; keep.len()];
         let mut released_patients = 0i64;
         for (s, st) in per_site.iter().enumerate() {
             let row = st.and_then(|st| lookup[s].get(k_).map(|&r| (st, r)));
@@ -152,17 +178,16 @@ pub(crate) fn pool(
                 continue;
             }
             let mut ok = true;
-            let mut vals = vec![0i64; keep.len()];
+            let mut vals = vec![0f64; keep.len()];
             for (i, &c) in keep.iter().enumerate() {
-                if t.columns[c].role == Role::Dimension {
-                    continue;
-                }
-                match st
-                    .column(&t.columns[c].name)
-                    .and_then(|sc| st.rows[r][sc].as_i64())
-                {
-                    Some(v) => vals[i] = v,
-                    None => ok = false,
+                let v = st.column(&t.columns[c].name).map(|sc| &st.rows[r][sc]);
+                match (&t.columns[c].role, v) {
+                    (Role::Dimension, _) => {}
+                    (Role::PersonTime, Some(v)) if v.as_f64().is_some() => {
+                        vals[i] = v.as_f64().unwrap_or(0.0);
+                    }
+                    (_, Some(Value::Int(v))) => vals[i] = *v as f64,
+                    _ => ok = false,
                 }
             }
             if !ok {
@@ -179,13 +204,30 @@ pub(crate) fn pool(
         let mut row = Vec::new();
         let mut d = 0;
         for (i, &c) in keep.iter().enumerate() {
-            if t.columns[c].role == Role::Dimension {
-                row.push(dvals[d].clone());
-                d += 1;
-            } else if missing.is_empty() {
-                row.push(Value::Int(sums[i]));
-            } else {
-                row.push(Value::Int(MARKER));
+            match (&t.columns[c].role, missing.is_empty()) {
+                (Role::Dimension, _) => {
+                    row.push(dvals[d].clone());
+                    d += 1;
+                }
+                (Role::PersonTime, true) => row.push(Value::Float(sums[i])),
+                (Role::PersonTime, false) => row.push(Value::Null),
+                (_, true) => row.push(Value::Int(sums[i] as i64)),
+                (_, false) => row.push(Value::Int(MARKER)),
+            }
+        }
+        if rates {
+            row.extend([Value::Null, Value::Null, Value::Null]);
+            let r = out.rows.len();
+            let inputs = vec![
+                CellRef::here(r, "n_events"),
+                CellRef::here(r, "person_years"),
+            ];
+            for (c, f) in [
+                ("rate_per_100py", Formula::Rate),
+                ("lower", Formula::PoissonLower),
+                ("upper", Formula::PoissonUpper),
+            ] {
+                out.derive(r, c, f, inputs.clone(), RATE_LEVEL, 100.0);
             }
         }
         if !missing.is_empty() {

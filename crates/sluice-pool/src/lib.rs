@@ -14,8 +14,10 @@
 //!   the sites' released cells with the same dimension values. Site counts are rounded to the
 //!   rounding base b, so a pooled sum over k sites is within ±k·b/2 of the true total (said in each
 //!   table's description and in the report). Statistics, quantiles and magnitudes of a count table
-//!   are dropped: means and quantiles do not add. Site patients are assumed distinct (a patient
-//!   belongs to one site).
+//!   are dropped: means and quantiles do not add. Person-time is summed like a count, and a table
+//!   with `n_events`, `person_years` and `rate_per_100py` gets pooled rates (pooled events over
+//!   pooled person-time, with exact Poisson limits), computed at release from the pooled released
+//!   sums like any derived cell. Site patients are assumed distinct (a patient belongs to one site).
 //! - **Cells withheld at a site**: where any site withheld a cell (or lacks it), the pooled cell is
 //!   withheld too. Disclosure control marks it `withheld` (the candidate carries a count
 //!   below the threshold as the marker); which sites withheld it is recorded in the separate table

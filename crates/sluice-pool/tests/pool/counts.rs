@@ -112,3 +112,81 @@ fn estimates_are_pooled_by_inverse_variance() {
     let (_, srows) = read(&out, "site_estimates");
     assert_eq!(srows.len(), 2);
 }
+
+/// A site's critical results: events and person-time, with the rate declared as derived.
+fn critical(events: i64, py: f64) -> sluice_aggregate::Table {
+    use sluice_aggregate::{CellRef, Formula, Role, Table, col, dim};
+    let mut t = Table::new(
+        "critical_results",
+        "Critical results",
+        "",
+        vec![
+            dim("window", ""),
+            col("n_patients", Role::Patients, ""),
+            col("n_events", Role::Count, ""),
+            col("person_years", Role::PersonTime, ""),
+            col("rate_per_100py", Role::Statistic, ""),
+            col("lower", Role::Statistic, ""),
+            col("upper", Role::Statistic, ""),
+        ],
+    );
+    t.push(vec![
+        "baseline".into(),
+        Value::Int(events),
+        Value::Int(events),
+        Value::Float(py),
+        Value::Null,
+        Value::Null,
+        Value::Null,
+    ]);
+    let inputs = vec![
+        CellRef::here(0, "n_events"),
+        CellRef::here(0, "person_years"),
+    ];
+    for (c, f) in [
+        ("rate_per_100py", Formula::Rate),
+        ("lower", Formula::PoissonLower),
+        ("upper", Formula::PoissonUpper),
+    ] {
+        t.derive(0, c, f, inputs.clone(), 0.95, 100.0);
+    }
+    t
+}
+
+// Crafted: sites release 15 events in 50 patient-years (from 13 in 48) and 20 in 60 (from 21
+// in 61); the pooled rate is 35 events over 110 patient-years, from the released sums only, with
+// its exact Poisson limits (common practice: a pooled rate is pooled events over pooled
+// person-time).
+#[test]
+fn pooled_rates_come_from_summed_released_counts() {
+    let d = tempfile::tempdir().unwrap();
+    let r = rules();
+    let sha = "c".repeat(64);
+    let a = release(
+        d.path(),
+        &provenance("alpha", "s", &sha),
+        &r,
+        &[critical(13, 48.0)],
+        true,
+    );
+    let b = release(
+        d.path(),
+        &provenance("beta", "s", &sha),
+        &r,
+        &[critical(21, 61.0)],
+        true,
+    );
+    let out = d.path().join("pooled");
+    let rep = sluice_pool::pool(&[a, b], &out, &r, &policy()).unwrap();
+    assert!(rep.verdict.passed(), "{}", rep.verdict);
+    let (names, rows) = read(&out, "critical_results");
+    let row = &rows[0];
+    assert_eq!(get(&names, row, "n_events"), &Value::Int(35));
+    assert_eq!(get(&names, row, "person_years"), &Value::Float(110.0));
+    assert_eq!(
+        get(&names, row, "rate_per_100py"),
+        &Value::Float(35.0 / 110.0 * 100.0)
+    );
+    let ci = sluice_stats::poisson_exact_ci(35, 1.1, 0.95).unwrap();
+    assert_eq!(get(&names, row, "lower"), &Value::Float(ci.lower));
+}
