@@ -257,6 +257,14 @@ pub fn check(rel: &Path, policy: &CheckPolicy) -> Verdict {
         );
         return v;
     }
+    for f in crate::scan::scan(&String::from_utf8_lossy(&bytes), false) {
+        v.fail(
+            MANIFEST,
+            None,
+            "identifier",
+            format!("holds {} {:?}", f.kind, f.text),
+        );
+    }
     let rules = manifest_rules(&m, policy, &mut v);
     let listed = listed_files(rel, &m, &mut v);
     let mut seen = Vec::new();
@@ -300,7 +308,23 @@ pub fn check(rel: &Path, policy: &CheckPolicy) -> Verdict {
             );
         }
         match entry.kind {
-            FileKind::Extra => v.unchecked.push(entry.name.clone()),
+            FileKind::Extra if entry.name != REPORT => v.fail(
+                &entry.name,
+                None,
+                "files",
+                format!("a release holds its tables and {REPORT} only; an extra file is unverified content"),
+            ),
+            FileKind::Extra => {
+                for f in crate::scan::scan(&String::from_utf8_lossy(&bytes), false) {
+                    v.fail(
+                        &entry.name,
+                        None,
+                        "identifier",
+                        format!("holds {} {:?}", f.kind, f.text),
+                    );
+                }
+                v.unchecked.push(entry.name.clone());
+            }
             FileKind::Table => {
                 if let Some(rules) = &rules
                     && let Some(t) = check_table(&path, entry, &m, rules, policy, &mut v)
@@ -315,6 +339,23 @@ pub fn check(rel: &Path, policy: &CheckPolicy) -> Verdict {
     }
     v
 }
+
+/// The metadata keys (after the `sluice.` prefix) a released table carries.
+const META_KEYS: [&str; 10] = [
+    "study",
+    "study_title",
+    "site",
+    "table",
+    "title",
+    "description",
+    "columns",
+    "constraints",
+    "rules_sha256",
+    "provenance",
+];
+
+/// The one extra file a release may hold besides its tables.
+const REPORT: &str = "report.html";
 
 /// A table as check read it, for the attacks that look across columns and tables.
 pub(crate) struct Seen {
@@ -529,22 +570,6 @@ pub fn array_values(a: &dyn Array) -> Option<Vec<Value>> {
     })
 }
 
-/// `YYYY-MM-DD` anywhere in a text value: a date finer than a month.
-fn has_day_date(s: &str) -> bool {
-    let b = s.as_bytes();
-    let d = |i: usize| b[i].is_ascii_digit();
-    b.len() >= 10
-        && (0..=b.len() - 10).any(|i| {
-            (0..4).all(|k| d(i + k))
-                && b[i + 4] == b'-'
-                && d(i + 5)
-                && d(i + 6)
-                && b[i + 7] == b'-'
-                && d(i + 8)
-                && d(i + 9)
-        })
-}
-
 /// A released Parquet file as read by arrow-rs: its key-value metadata, its schema and every
 /// column's values. Used by `check` and by pooling, so both read releases one way.
 pub type ReleasedTable = (
@@ -601,6 +626,35 @@ fn check_table(
         }
     };
     v.tables += 1;
+    for (k, value) in &kv {
+        let known = k == "ARROW:schema"
+            || k.strip_prefix(META_PREFIX)
+                .is_some_and(|k| META_KEYS.contains(&k));
+        if !known {
+            v.fail(
+                file,
+                None,
+                "metadata",
+                format!("key {k:?} is not one a release carries; unverified content is refused"),
+            );
+            continue;
+        }
+        if k == "ARROW:schema" {
+            continue;
+        }
+        for f in crate::scan::scan(value, true) {
+            v.fail(
+                file,
+                None,
+                if f.kind == "date" {
+                    "date"
+                } else {
+                    "identifier"
+                },
+                format!("metadata {k} holds {} {:?}", f.kind, f.text),
+            );
+        }
+    }
     let meta = |k: &str| kv.get(&format!("{META_PREFIX}{k}"));
     for (k, want) in [
         ("study", &m.study),
@@ -755,16 +809,28 @@ fn check_table(
     }
     for (c, vals) in cols.iter().enumerate() {
         for (r, x) in vals.iter().enumerate() {
+            if let Some(f) = x.as_f64().and_then(crate::scan::scan_number) {
+                v.fail(
+                    file,
+                    Some(r),
+                    "identifier",
+                    format!(
+                        "column {} value {} reads as an {}",
+                        names[c], f.text, f.kind
+                    ),
+                );
+            }
             if let Value::Text(s) = x {
-                if has_day_date(s) {
+                for f in crate::scan::scan(s, true) {
+                    let (rule, what) = match f.kind {
+                        "date" => ("date", "a date finer than a month".to_string()),
+                        k => ("identifier", format!("an identifier ({k})")),
+                    };
                     v.fail(
                         file,
                         Some(r),
-                        "date",
-                        format!(
-                            "column {} value {s:?} is a date finer than a month",
-                            names[c]
-                        ),
+                        rule,
+                        format!("column {} value {s:?} holds {what}: {:?}", names[c], f.text),
                     );
                 }
                 if s.chars().count() > policy.columns.max_text_chars {
@@ -990,17 +1056,4 @@ fn check_table(
         cols,
         withheld,
     })
-}
-
-#[cfg(test)]
-mod tests {
-    use super::has_day_date;
-
-    #[test]
-    fn day_dates_are_found() {
-        assert!(has_day_date("2024-03-05"));
-        assert!(has_day_date("from 2024-03-05 on"));
-        assert!(!has_day_date("2024-03"));
-        assert!(!has_day_date("2024-03 to 2024-04"));
-    }
 }

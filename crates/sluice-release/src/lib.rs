@@ -16,6 +16,7 @@ mod approve;
 mod attack;
 mod check;
 mod manifest;
+pub mod scan;
 mod write;
 
 pub use approve::{ApprovalRecord, Decision, ExportReport, approve, export};

@@ -4,5 +4,6 @@
 mod approval;
 mod check;
 mod common;
+mod forged;
 mod leaks;
 mod write;
