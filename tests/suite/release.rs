@@ -8,7 +8,10 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 pub(crate) fn sluice(args: &[&str]) -> std::process::Output {
-    let policies = common::policies();
+    sluice_with(&common::policies(), args)
+}
+
+pub(crate) fn sluice_with(policies: &Path, args: &[&str]) -> std::process::Output {
     let mut all = vec!["--policies", policies.to_str().unwrap()];
     all.extend_from_slice(args);
     Command::new(common::sluice_bin())
@@ -145,13 +148,49 @@ print(n)
     }
 }
 
+/// A copy of the shipped policies whose register holds one reviewer made with
+/// `sluice reviewer new`; returns the policies folder and the reviewer's key file.
+fn policies_with_reviewer(dir: &Path, name: &str) -> (PathBuf, PathBuf) {
+    fn copy(from: &Path, to: &Path) {
+        std::fs::create_dir_all(to).unwrap();
+        for e in std::fs::read_dir(from).unwrap() {
+            let p = e.unwrap().path();
+            let t = to.join(p.file_name().unwrap());
+            if p.is_dir() {
+                copy(&p, &t);
+            } else {
+                std::fs::copy(&p, &t).unwrap();
+            }
+        }
+    }
+    let policies = dir.join("policies");
+    copy(&common::policies(), &policies);
+    let key = dir.join("reviewer.key");
+    let o = sluice(&[
+        "reviewer",
+        "new",
+        "--name",
+        name,
+        "--out",
+        key.to_str().unwrap(),
+    ]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let reg = policies.join("disclosure/reviewers.toml");
+    let mut text = std::fs::read_to_string(&reg).unwrap();
+    text.push('\n');
+    text.push_str(&String::from_utf8_lossy(&o.stdout));
+    std::fs::write(&reg, text).unwrap();
+    (policies, key)
+}
+
 #[test]
 fn export_needs_an_approval_of_the_exact_bytes() {
     let l = synth_and_link("quillmere", 516);
     let work = l.dir.path().join("work");
     let rel = l.dir.path().join("rel");
     let to = l.dir.path().join("out");
-    let s = |a: &[&str]| sluice(a);
+    let (policies, key) = policies_with_reviewer(l.dir.path(), "A. Reviewer");
+    let s = |a: &[&str]| sluice_with(&policies, a);
     assert!(
         s(&[
             "measure",
@@ -189,8 +228,8 @@ fn export_needs_an_approval_of_the_exact_bytes() {
     let o = s(&[
         "approve",
         rel.to_str().unwrap(),
-        "--reviewer",
-        "A. Reviewer",
+        "--key",
+        key.to_str().unwrap(),
         "--decision",
         "approved",
         "--note",

@@ -579,6 +579,9 @@ pub struct Provenance {
     pub tool_version: String,
     /// The study policy and every reference table it used.
     pub inputs: Vec<Input>,
+    /// Who made the release (set by `sluice release`), for separation of duties at approval.
+    #[serde(default)]
+    pub made_by: String,
 }
 
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]

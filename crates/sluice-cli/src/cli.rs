@@ -49,8 +49,11 @@ pub enum Command {
         /// The release folder.
         release: PathBuf,
     },
-    /// Record the IG officer's decision, bound to the exact bytes of the release.
+    /// Record the IG officer's signed decision, bound to the exact bytes of the release.
     Approve(ApproveArgs),
+    /// Reviewer signing keys.
+    #[command(subcommand)]
+    Reviewer(ReviewerCommand),
     /// Pool approved releases of the same study from several sites into one release.
     Pool(PoolArgs),
     /// Copy a checked and approved release out of the secure area.
@@ -77,6 +80,10 @@ pub struct ReleaseArgs {
     /// The release ledger (default: `<store>-ledger/ledger.json` beside the store measured).
     #[arg(long)]
     pub ledger: Option<PathBuf>,
+    /// Who makes the release (recorded in the manifest; a site requiring two people refuses
+    /// their approval of it). Default: the login name.
+    #[arg(long, env = "USER")]
+    pub analyst: Option<String>,
 }
 
 #[derive(Args, Debug)]
@@ -96,9 +103,10 @@ pub struct PoolArgs {
 pub struct ApproveArgs {
     /// The release folder.
     pub release: PathBuf,
-    /// Who decides (recorded in the approval).
+    /// The reviewer's signing key (made by `sluice reviewer new`, registered in
+    /// <policies>/disclosure/reviewers.toml); its name is recorded in the approval.
     #[arg(long)]
-    pub reviewer: String,
+    pub key: PathBuf,
     #[arg(long, value_enum)]
     pub decision: DecisionArg,
     /// The reviewer's note (recorded in the approval).
@@ -137,6 +145,19 @@ pub enum KeyCommand {
     },
     /// Print the key's public fingerprint (never the key).
     Fingerprint { file: PathBuf },
+}
+
+#[derive(Subcommand, Debug)]
+pub enum ReviewerCommand {
+    /// Make an Ed25519 signing key for an IG officer (file mode 0600) and print the line that
+    /// registers its public half in <policies>/disclosure/reviewers.toml.
+    New {
+        /// The reviewer's name, as approvals will record it.
+        #[arg(long)]
+        name: String,
+        #[arg(long)]
+        out: PathBuf,
+    },
 }
 
 #[derive(Args, Debug)]

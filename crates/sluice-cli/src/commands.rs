@@ -2,7 +2,7 @@
 
 use crate::cli::{
     ApproveArgs, Cli, Command, DecisionArg, DemoArgs, KeyCommand, LinkArgs, MeasureArgs,
-    ReleaseArgs, SynthArgs,
+    ReleaseArgs, ReviewerCommand, SynthArgs,
 };
 use anyhow::{Context, Result, bail};
 use chrono::NaiveDate;
@@ -21,6 +21,7 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         Command::Check { release } => check(&cli.policies, &release),
         Command::Ledger { store } => ledger(&store).map(|_| ExitCode::SUCCESS),
         Command::Approve(a) => approve(&cli.policies, &a).map(|_| ExitCode::SUCCESS),
+        Command::Reviewer(r) => reviewer(r).map(|_| ExitCode::SUCCESS),
         Command::Pool(a) => {
             pool(&cli.policies, &a.releases, &a.rules, &a.out).map(|_| ExitCode::SUCCESS)
         }
@@ -106,6 +107,7 @@ fn release(policies: &Path, a: &ReleaseArgs) -> Result<sluice_release::ReleaseMa
     }
 
     let mut provenance = candidates.provenance.clone();
+    provenance.made_by = a.analyst.clone().unwrap_or_default();
     provenance.inputs.push(sluice_aggregate::Input {
         role: "candidates".into(),
         path: candidates_path.to_string_lossy().into_owned(),
@@ -216,18 +218,42 @@ fn approve(policies: &Path, a: &ApproveArgs) -> Result<sluice_release::ApprovalR
         DecisionArg::Approved => sluice_release::Decision::Approved,
         DecisionArg::Rejected => sluice_release::Decision::Rejected,
     };
+    let key = sluice_release::ReviewerKey::load(&a.key)?;
     let r = sluice_release::approve(
         &a.release,
-        &a.reviewer,
+        &key,
         decision,
         &a.note,
         &check_policy(policies)?,
     )?;
     println!(
-        "{:?} by {} at {} for manifest {}",
-        r.decision, r.reviewer, r.time_utc, r.manifest_sha256
+        "{:?} by {} at {} for manifest {}, signed; logged in {}",
+        r.decision,
+        r.reviewer,
+        r.time_utc,
+        r.manifest_sha256,
+        sluice_release::decisions_log(&a.release).display()
     );
     Ok(r)
+}
+
+fn reviewer(r: ReviewerCommand) -> Result<()> {
+    match r {
+        ReviewerCommand::New { name, out } => {
+            let key = sluice_release::ReviewerKey::generate(&name)?;
+            key.save(&out)?;
+            eprintln!(
+                "wrote reviewer key {} (mode 0600); it stays with the reviewer. Register its public half in <policies>/disclosure/reviewers.toml:",
+                out.display()
+            );
+            println!(
+                "[[reviewer]]\nname = {:?}\npublic_key = \"{}\"",
+                key.name(),
+                key.public_hex()
+            );
+        }
+    }
+    Ok(())
 }
 
 fn export(policies: &Path, rel: &Path, to: &Path) -> Result<sluice_release::ExportReport> {
@@ -299,15 +325,50 @@ fn measure_quiet(
     })?)
 }
 
-fn approve_quiet(policies: &Path, rel: &Path, reviewer: &str) -> Result<()> {
-    sluice_release::approve(
-        rel,
-        reviewer,
-        sluice_release::Decision::Approved,
-        "demo release: synthetic data of an invented region",
-        &check_policy(policies)?,
-    )?;
-    Ok(())
+/// The demo's reviewers: a signing key each, made in the demo's secure folder, and a register
+/// of their public halves that the demo's policy uses in place of the site's.
+struct DemoReviewers {
+    keys: Vec<sluice_release::ReviewerKey>,
+    policy: sluice_release::CheckPolicy,
+}
+
+impl DemoReviewers {
+    fn make(policies: &Path, dir: &Path, names: &[&str]) -> Result<DemoReviewers> {
+        std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+        let mut toml = String::from(
+            "# Reviewers of the demo's invented sites, made by `sluice demo`.\ntwo_person = true\n",
+        );
+        let mut keys = Vec::new();
+        for (i, name) in names.iter().enumerate() {
+            let key = sluice_release::ReviewerKey::generate(name)?;
+            key.save(&dir.join(format!("reviewer-{i}.key")))?;
+            toml.push_str(&format!(
+                "\n[[reviewer]]\nname = {name:?}\npublic_key = \"{}\"\n",
+                key.public_hex()
+            ));
+            keys.push(key);
+        }
+        let path = dir.join("reviewers.toml");
+        std::fs::write(&path, toml).with_context(|| format!("writing {}", path.display()))?;
+        let policy = check_policy(policies)?.with_reviewers(sluice_release::Registry::load(&path)?);
+        Ok(DemoReviewers { keys, policy })
+    }
+
+    fn approve(&self, rel: &Path, name: &str) -> Result<()> {
+        let key = self
+            .keys
+            .iter()
+            .find(|k| k.name() == name)
+            .with_context(|| format!("no demo reviewer {name}"))?;
+        sluice_release::approve(
+            rel,
+            key,
+            sluice_release::Decision::Approved,
+            "demo release: synthetic data of an invented region",
+            &self.policy,
+        )?;
+        Ok(())
+    }
 }
 
 fn pool(
@@ -342,9 +403,14 @@ fn pool(
     Ok(r)
 }
 
-fn pool_quiet(policies: &Path, inputs: &[PathBuf], out: &Path) -> Result<()> {
+fn pool_quiet(
+    policies: &Path,
+    policy: &sluice_release::CheckPolicy,
+    inputs: &[PathBuf],
+    out: &Path,
+) -> Result<()> {
     let rules = sluice_disclose::Rules::load(&policies.join("disclosure/standard.toml"))?;
-    let r = sluice_pool::pool(inputs, out, &rules, &check_policy(policies)?)?;
+    let r = sluice_pool::pool(inputs, out, &rules, policy)?;
     if !r.verdict.passed() {
         bail!(
             "the pooled release {} fails its check:\n{}",
@@ -629,6 +695,18 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
         m.current_rows
     );
 
+    // The reviewers sign with keys of their own, made here and registered for the demo only.
+    let reviewers = DemoReviewers::make(
+        policies,
+        &secure.join("reviewers"),
+        &[
+            &format!("demo IG officer ({site})"),
+            "demo IG officer (brackenholt)",
+            "demo IG officer (saltreach)",
+            "demo consortium lead",
+        ],
+    )?;
+
     // Stages 4-6: both shipped studies, each measured, released, checked, approved and exported.
     let studies = ["mtx-monitoring", "potassium-seasonal"];
     println!("[3/7] measure: {}", studies.join(", "));
@@ -653,6 +731,7 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
                 rules: "standard".into(),
                 out: rel.clone(),
                 ledger: None,
+                analyst: Some("demo analyst".into()),
             },
         )?;
         let verdict = sluice_release::check(&rel, &check_policy(policies)?);
@@ -673,11 +752,11 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
     );
     for st in studies {
         let rel = releases.join(format!("{site}-{st}"));
-        approve_quiet(policies, &rel, &format!("demo IG officer ({site})"))?;
+        reviewers.approve(&rel, &format!("demo IG officer ({site})"))?;
         let r = sluice_release::export(
             &rel,
             &a.out.join("export").join(format!("{site}-{st}")),
-            &check_policy(policies)?,
+            &reviewers.policy,
         )?;
         println!(
             "      exported {} files to {}",
@@ -713,9 +792,10 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
                 rules: "standard".into(),
                 out: rel.clone(),
                 ledger: None,
+                analyst: Some("demo analyst".into()),
             },
         )?;
-        approve_quiet(policies, &rel, &format!("demo IG officer ({other})"))?;
+        reviewers.approve(&rel, &format!("demo IG officer ({other})"))?;
         println!(
             "      {other}: linked, measured, released and approved ({})",
             rel.display()
@@ -724,12 +804,12 @@ fn demo(policies: &Path, a: DemoArgs) -> Result<ExitCode> {
     }
     println!("[7/7] pool: three approved site releases into one pooled release");
     let pooled = releases.join("pooled-mtx-monitoring");
-    pool_quiet(policies, &site_releases, &pooled)?;
-    approve_quiet(policies, &pooled, "demo consortium lead")?;
+    pool_quiet(policies, &reviewers.policy, &site_releases, &pooled)?;
+    reviewers.approve(&pooled, "demo consortium lead")?;
     let r = sluice_release::export(
         &pooled,
         &a.out.join("export/pooled-mtx-monitoring"),
-        &check_policy(policies)?,
+        &reviewers.policy,
     )?;
     println!(
         "      {}: checked, approved and exported to {}",

@@ -297,6 +297,7 @@ fn provenance(sites: &[Site]) -> Provenance {
         store_generation: 0,
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
         inputs,
+        made_by: String::new(),
     }
 }
 

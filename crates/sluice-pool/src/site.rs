@@ -2,8 +2,7 @@
 
 use sluice_aggregate::{Column, Constraint, Value, sha256_hex};
 use sluice_release::{
-    APPROVAL, ApprovalRecord, CheckPolicy, Decision, FileKind, MANIFEST, META_PREFIX,
-    ReleaseManifest, SCHEMA_VERSION, check,
+    CheckPolicy, FileKind, MANIFEST, META_PREFIX, ReleaseManifest, SCHEMA_VERSION, check,
 };
 use std::path::{Path, PathBuf};
 
@@ -105,38 +104,10 @@ pub(crate) fn load(rel: &Path, policy: &CheckPolicy) -> Result<Site, PoolError> 
     }
 
     let manifest_sha256 = sha256_hex(&bytes);
-    let apath = rel.join(APPROVAL);
-    let abytes = match std::fs::read(&apath) {
-        Ok(b) => b,
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
-            return Err(refuse(format!(
-                "not approved: no {APPROVAL}; the IG officer must approve it first"
-            )));
-        }
-        Err(source) => {
-            return Err(PoolError::Io {
-                path: apath,
-                source,
-            });
-        }
-    };
-    let a: ApprovalRecord = serde_json::from_slice(&abytes).map_err(|e| {
-        refuse(format!(
-            "not approved: {APPROVAL} is not an approval record: {e}"
-        ))
-    })?;
-    if a.decision != Decision::Approved {
-        return Err(refuse(format!(
-            "not approved: {} rejected it: {}",
-            a.reviewer, a.note
-        )));
-    }
-    if a.manifest_sha256 != manifest_sha256 {
-        return Err(refuse(format!(
-            "not approved: {APPROVAL} approves manifest sha256 {} but {MANIFEST} has sha256 {manifest_sha256}: the approval belongs to another release or the release changed after approval",
-            a.manifest_sha256
-        )));
-    }
+    // The same verification export applies: a signature by a registered reviewer over exactly
+    // this manifest, against the site's floor.
+    sluice_release::verify_approval(rel, policy)
+        .map_err(|e| refuse(format!("not approved: {e}")))?;
 
     let mut tables = Vec::new();
     for f in manifest.files.iter().filter(|f| f.kind == FileKind::Table) {

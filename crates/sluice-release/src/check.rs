@@ -109,24 +109,44 @@ impl AllowList {
     }
 }
 
-/// What a check holds a release to: the site floor and the column allow-list.
+/// What a check holds a release to: the site floor, the column allow-list and (for approval,
+/// export and pooling) the site's register of reviewers.
 #[derive(Clone, Debug, PartialEq)]
 pub struct CheckPolicy {
     pub floor: Floor,
+    /// SHA-256 of the floor file's bytes: what a signed approval records and export compares.
+    pub floor_sha256: String,
     pub columns: AllowList,
+    /// `reviewers.toml` beside the floor, where the site has one.
+    pub reviewers: Option<crate::sign::Registry>,
 }
 
 impl CheckPolicy {
     pub fn load(floor: &Path, columns: &Path) -> Result<CheckPolicy, ReleaseError> {
+        let bytes = std::fs::read(floor).map_err(crate::io(floor))?;
+        let reviewers = floor.with_file_name("reviewers.toml");
         Ok(CheckPolicy {
             floor: Floor::load(floor)?,
+            floor_sha256: sha256(&bytes),
             columns: AllowList::load(columns)?,
+            reviewers: if reviewers.exists() {
+                Some(crate::sign::Registry::load(&reviewers)?)
+            } else {
+                None
+            },
         })
     }
 
-    /// `floor.toml` and `columns.toml` from one folder (normally `policies/disclosure`).
+    /// `floor.toml`, `columns.toml` and `reviewers.toml` from one folder (normally
+    /// `policies/disclosure`).
     pub fn load_dir(dir: &Path) -> Result<CheckPolicy, ReleaseError> {
         CheckPolicy::load(&dir.join("floor.toml"), &dir.join("columns.toml"))
+    }
+
+    /// The same policy with another register of reviewers (the demo registers its own).
+    pub fn with_reviewers(mut self, registry: crate::sign::Registry) -> CheckPolicy {
+        self.reviewers = Some(registry);
+        self
     }
 }
 

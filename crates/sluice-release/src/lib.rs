@@ -17,9 +17,13 @@ mod attack;
 mod check;
 mod manifest;
 pub mod scan;
+pub mod sign;
 mod write;
 
-pub use approve::{ApprovalRecord, Decision, ExportReport, approve, export};
+pub use approve::{
+    ApprovalRecord, Decided, Decision, ExportReport, approve, decisions_log, export,
+    verify_approval,
+};
 pub use check::{
     AllowList, AllowedColumn, CheckPolicy, ColumnType, Problem, ReleasedTable, Verdict,
     array_values, check, read_released_table,
@@ -28,6 +32,7 @@ pub use manifest::{
     APPROVAL, FileEntry, FileKind, MANIFEST, META_PREFIX, ReleaseManifest, RulesRecord,
     SCHEMA_VERSION,
 };
+pub use sign::{Registry, ReviewerKey};
 pub use write::write_release;
 
 use std::path::PathBuf;

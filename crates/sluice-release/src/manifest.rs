@@ -63,6 +63,9 @@ pub struct ReleaseManifest {
     /// The study policy and every reference table it used, with SHA-256s.
     pub inputs: Vec<Input>,
     pub disclosure_rules: RulesRecord,
+    /// Who made the release; a site requiring two people refuses its approval by them.
+    #[serde(default)]
+    pub made_by: String,
     pub files: Vec<FileEntry>,
 }
 

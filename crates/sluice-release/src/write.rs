@@ -383,6 +383,7 @@ pub fn write_release(
                 sha256: rules.sha256().into(),
                 content: rules.text().into(),
             },
+            made_by: provenance.made_by.clone(),
             files,
         };
         // The manifest goes last: a folder with a manifest has every file it lists.

@@ -211,6 +211,7 @@ pub fn measure(opts: &Options<'_>) -> Result<Outcome, MeasureError> {
             store_generation: m.generation,
             tool_version: env!("CARGO_PKG_VERSION").to_string(),
             inputs,
+            made_by: String::new(),
         },
         tables,
         populations: populations(members),

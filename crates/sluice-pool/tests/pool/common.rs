@@ -1,6 +1,6 @@
 use sluice_aggregate::{Input, Provenance, Role, Table, Value, col, dim};
 use sluice_disclose::{Rules, control};
-use sluice_release::{CheckPolicy, Decision, approve, write_release};
+use sluice_release::{CheckPolicy, Decision, Registry, ReviewerKey, approve, write_release};
 use std::path::{Path, PathBuf};
 
 pub fn root() -> PathBuf {
@@ -11,8 +11,24 @@ pub fn rules() -> Rules {
     Rules::load(&root().join("policies/disclosure/standard.toml")).unwrap()
 }
 
+/// The tests' reviewer, made once per run and registered in [`policy`].
+pub fn reviewer() -> &'static ReviewerKey {
+    static K: std::sync::OnceLock<ReviewerKey> = std::sync::OnceLock::new();
+    K.get_or_init(|| ReviewerKey::generate("IG officer").unwrap())
+}
+
 pub fn policy() -> CheckPolicy {
-    CheckPolicy::load_dir(&root().join("policies/disclosure")).unwrap()
+    let registry = Registry::parse(
+        &format!(
+            "two_person = true\n[[reviewer]]\nname = \"IG officer\"\npublic_key = \"{}\"\n",
+            reviewer().public_hex()
+        ),
+        Path::new("test-reviewers.toml"),
+    )
+    .unwrap();
+    CheckPolicy::load_dir(&root().join("policies/disclosure"))
+        .unwrap()
+        .with_reviewers(registry)
 }
 
 pub fn provenance(site: &str, study: &str, study_sha: &str) -> Provenance {
@@ -29,6 +45,7 @@ pub fn provenance(site: &str, study: &str, study_sha: &str) -> Provenance {
             path: "policies/studies/test.toml".into(),
             sha256: study_sha.into(),
         }],
+        made_by: String::new(),
     }
 }
 
@@ -44,7 +61,7 @@ pub fn release(
     let checked: Vec<_> = tables.iter().map(|t| control(t, rules).unwrap()).collect();
     write_release(&out, prov, rules, &checked, &[]).unwrap();
     if approved {
-        approve(&out, "IG officer", Decision::Approved, "test", &policy()).unwrap();
+        approve(&out, reviewer(), Decision::Approved, "test", &policy()).unwrap();
     }
     out
 }

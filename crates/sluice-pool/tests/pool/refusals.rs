@@ -97,7 +97,7 @@ fn an_unapproved_release_is_refused() {
     assert!(m.contains("site beta") && m.contains("not approved"), "{m}");
     sluice_release::approve(
         &b,
-        "IG",
+        crate::common::reviewer(),
         sluice_release::Decision::Rejected,
         "no",
         &policy(),

@@ -2,7 +2,7 @@
 
 use sluice_aggregate::{ALL, Histogram, Input, Provenance, Role, Table, Value, col, dim};
 use sluice_disclose::{CheckedTable, Rules, control};
-use sluice_release::{CheckPolicy, ReleaseManifest, write_release};
+use sluice_release::{CheckPolicy, Registry, ReleaseManifest, ReviewerKey, write_release};
 use std::path::{Path, PathBuf};
 
 pub fn policies() -> PathBuf {
@@ -13,8 +13,36 @@ pub fn rules() -> Rules {
     Rules::load(&policies().join("standard.toml")).unwrap()
 }
 
+/// A reviewer key made once per run; "I. G. Officer" is registered in [`policy`], "intruder"
+/// is not.
+pub fn reviewer(name: &str) -> &'static ReviewerKey {
+    static K: std::sync::OnceLock<Vec<ReviewerKey>> = std::sync::OnceLock::new();
+    let keys = K.get_or_init(|| {
+        ["I. G. Officer", "intruder", "A. Analyst"]
+            .iter()
+            .map(|n| ReviewerKey::generate(n).unwrap())
+            .collect()
+    });
+    keys.iter()
+        .find(|k| k.name() == name)
+        .expect("a test reviewer")
+}
+
+pub fn registry() -> Registry {
+    let mut text = String::from("two_person = true\n");
+    for n in ["I. G. Officer", "A. Analyst"] {
+        text.push_str(&format!(
+            "[[reviewer]]\nname = {n:?}\npublic_key = \"{}\"\n",
+            reviewer(n).public_hex()
+        ));
+    }
+    Registry::parse(&text, Path::new("test-reviewers.toml")).unwrap()
+}
+
 pub fn policy() -> CheckPolicy {
-    CheckPolicy::load_dir(&policies()).unwrap()
+    CheckPolicy::load_dir(&policies())
+        .unwrap()
+        .with_reviewers(registry())
 }
 
 pub fn provenance(site: &str) -> Provenance {
@@ -31,6 +59,7 @@ pub fn provenance(site: &str) -> Provenance {
             path: "policies/studies/mtx.toml".into(),
             sha256: "1".repeat(64),
         }],
+        made_by: String::new(),
     }
 }
 
