@@ -55,6 +55,10 @@ pub struct AllowedColumn {
     pub column_type: ColumnType,
     /// Roles the column may have: dimension, patients, count, statistic, quantile, magnitude.
     pub roles: Vec<String>,
+    /// A dimension whose `all` rows are totals of the other values' rows: check rebuilds these
+    /// margins from the values themselves rather than trusting the constraints a file records.
+    #[serde(default)]
+    pub margin: bool,
 }
 
 #[derive(Deserialize)]
@@ -402,6 +406,55 @@ impl Seen {
     }
 }
 
+/// The margins a table's values imply: for each dimension the allow-list marks as a margin, the
+/// rows whose value is `all` are totals of the rows that agree with them on every other
+/// dimension (where there are at least two such parts).
+fn rebuilt_margins(
+    columns: &[Column],
+    cols: &[Vec<Value>],
+    policy: &CheckPolicy,
+) -> Vec<Constraint> {
+    let dims: Vec<usize> = (0..columns.len())
+        .filter(|&c| columns[c].role == Role::Dimension)
+        .collect();
+    let n = cols.first().map_or(0, Vec::len);
+    let mut out = Vec::new();
+    for &d in &dims {
+        let margin = policy
+            .columns
+            .columns
+            .get(&columns[d].name)
+            .is_some_and(|a| a.margin);
+        if !margin {
+            continue;
+        }
+        let key = |r: usize| -> String {
+            dims.iter()
+                .filter(|&&c| c != d)
+                .map(|&c| format!("{:?}", cols[c][r]))
+                .collect::<Vec<_>>()
+                .join("\u{1f}")
+        };
+        let mut totals: BTreeMap<String, usize> = BTreeMap::new();
+        let mut parts: BTreeMap<String, Vec<usize>> = BTreeMap::new();
+        for (r, value) in cols[d].iter().enumerate().take(n) {
+            if value.as_text() == Some(sluice_aggregate::ALL) {
+                totals.insert(key(r), r);
+            } else {
+                parts.entry(key(r)).or_default().push(r);
+            }
+        }
+        for (k, total) in totals {
+            if let Some(p) = parts.remove(&k)
+                && p.len() >= 2
+            {
+                out.push(Constraint { total, parts: p });
+            }
+        }
+    }
+    out
+}
+
 /// A released count obeys the rules: at least the threshold and a multiple of the rounding base,
 /// or 0 where zeros are shown. Check's own reading of the rules, not the release code's.
 pub(crate) fn count_ok(k: i64, rules: &Rules) -> bool {
@@ -705,18 +758,19 @@ fn check_table(
             return None;
         }
     };
-    let constraints: Vec<Constraint> = match meta("constraints").map(|s| serde_json::from_str(s)) {
-        Some(Ok(c)) => c,
-        other => {
-            v.fail(
-                file,
-                None,
-                "metadata",
-                format!("{META_PREFIX}constraints missing or invalid: {other:?}"),
-            );
-            return None;
-        }
-    };
+    let mut constraints: Vec<Constraint> =
+        match meta("constraints").map(|s| serde_json::from_str(s)) {
+            Some(Ok(c)) => c,
+            other => {
+                v.fail(
+                    file,
+                    None,
+                    "metadata",
+                    format!("{META_PREFIX}constraints missing or invalid: {other:?}"),
+                );
+                return None;
+            }
+        };
 
     // Schema: the recorded columns in order, then the disclosure column.
     let names: Vec<&str> = schema.fields().iter().map(|f| f.name().as_str()).collect();
@@ -1023,8 +1077,15 @@ fn check_table(
         );
     }
 
-    // Secondary suppression: each recorded constraint has 0 or ≥ 2 withheld members, for rows
-    // and for each magnitude column's null cells.
+    // Margins rebuilt from the dimension values, whatever the file records.
+    for c in rebuilt_margins(&columns, &cols, policy) {
+        if !constraints.contains(&c) {
+            constraints.push(c);
+        }
+    }
+
+    // Secondary suppression: each recorded or rebuilt constraint has 0 or ≥ 2 withheld members,
+    // for rows and for each magnitude column's null cells.
     if let Some(c) = constraints
         .iter()
         .find(|c| c.total >= n || c.parts.iter().any(|&p| p >= n))

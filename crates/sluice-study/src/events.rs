@@ -333,6 +333,8 @@ pub fn critical_tables(
                 t.push(r);
             }
         }
+        // all = monitoring + other, for the patients of either window as for the events.
+        t.add_margin_constraints("context")?;
         out.push(t);
     }
     Ok(out)

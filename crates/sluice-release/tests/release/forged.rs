@@ -209,3 +209,53 @@ fn an_unknown_metadata_key_is_refused() {
     let v = check(&rel, &policy());
     fails_with(&v, "metadata", "key \"note\" is not one a release carries");
 }
+
+#[test]
+fn emptied_constraints_do_not_hide_a_restored_cell() {
+    use arrow::array::{Int64Array, StringArray};
+    use std::sync::Arc;
+    let dir = tempfile::tempdir().unwrap();
+    let (rel, _) = release(dir.path(), "r", "quillmere");
+    // Row 0 (alt, on_time) was withheld by secondary suppression; release it again and record no
+    // constraints: check rebuilds the band margin from the values and still sees (alt, late)
+    // recoverable as total − on_time.
+    rewrite(&rel, "bands.parquet", |cols, schema, kv| {
+        for k in kv.iter_mut() {
+            if k.key == "sluice.constraints" {
+                k.value = Some("[]".into());
+            }
+        }
+        let np = schema.index_of("n_patients").unwrap();
+        let mut v: Vec<Option<i64>> = cols[np]
+            .as_any()
+            .downcast_ref::<Int64Array>()
+            .unwrap()
+            .iter()
+            .collect();
+        v[0] = Some(40);
+        cols[np] = Arc::new(Int64Array::from(v));
+        let dc = schema.index_of("disclosure").unwrap();
+        let mut s: Vec<Option<String>> = cols[dc]
+            .as_any()
+            .downcast_ref::<StringArray>()
+            .unwrap()
+            .iter()
+            .map(|x| x.map(String::from))
+            .collect();
+        s[0] = Some("released".into());
+        cols[dc] = Arc::new(StringArray::from(s));
+    });
+    let mut man = read_manifest(&rel);
+    for f in man["files"].as_array_mut().unwrap() {
+        if f["name"] == "bands.parquet" {
+            f["withheld"] = (f["withheld"].as_u64().unwrap() - 1).into();
+        }
+    }
+    write_manifest(&rel, &man);
+    let v = check(&rel, &policy());
+    fails_with(
+        &v,
+        "secondary",
+        "bands.parquet, row 1: secondary: the only withheld cell",
+    );
+}
