@@ -14,7 +14,8 @@
 //!    every other count column of the row, and a row is withheld as a whole.
 //! 3. **Secondary suppression** (`secondary = "margins"`): every [`Constraint`] (a total and its
 //!    parts) has 0 or at least 2 withheld members; where one member alone is withheld, the
-//!    released part with the fewest patients (or else the total) is withheld too (`secondary`),
+//!    released part with the fewest patients (or else the total) is withheld too (`secondary`);
+//!    a withheld zero does not count as one of the two,
 //!    repeated to a fixed point over all constraints, so a 2-D table with row and column margins
 //!    is protected along both.
 //! 4. **Cell rules** in released rows: statistics only with at least `threshold` patients;
@@ -23,7 +24,16 @@
 //!    when they pass (n, k)-dominance and the p%-rule (Hundepool et al. 2012 §4.2), with
 //!    secondary suppression of magnitude cells over the same constraints.
 //! 5. **Rounding** of every released count (patients and other counts) to the rounding base,
-//!    never to a non-zero value below the threshold. Withheld values are null, never sentinels.
+//!    never to a non-zero value below the threshold, and of person-time to the person-time base.
+//!    Withheld values are null, never sentinels.
+//! 6. **Precision**: statistics and quantiles with a [`sluice_aggregate::Precision`] are released
+//!    at a step that keeps every count the rounding allows possible ([`derive::grid_step`]).
+//! 7. **Derived cells** ([`control_all`]): every [`sluice_aggregate::Formula`] cell is recomputed
+//!    from the released values of its inputs, in this table or another, and left null (reason
+//!    `derived`) when any input is withheld ([`derive`]).
+//!
+//! A released row says only `released`, `merged` or `withheld` ([`Status::label`]); the reason
+//! is kept for the secure area's log ([`Status::log_label`], [`CheckedTable::notes`]).
 //!
 //! Contributions and support columns are dropped; the patients column is named `n_patients`.
 //!
