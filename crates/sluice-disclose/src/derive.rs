@@ -3,7 +3,7 @@
 //!
 //! A rate, share, interval, SE or test statistic computed from exact counts inverts to those
 //! counts: events = rate × person-time, (b, c) from McNemar's χ² and exact p, n from a t quantile.
-//! So the value measure computed is never released for a [`Formula`] cell: [`apply`] recomputes
+//! So the value measure computed is never released for a [`Formula`] cell: `apply` recomputes
 //! it from the released (rounded) inputs, and leaves it null, with the reason `derived`, when an
 //! input is withheld. Statistics inherit the suppression of the counts they come from: common
 //! practice in output checking; Hundepool et al., *Statistical Disclosure Control* (Wiley 2012)

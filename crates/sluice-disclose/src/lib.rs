@@ -30,7 +30,7 @@
 //!    at a step that keeps every count the rounding allows possible ([`derive::grid_step`]).
 //! 7. **Derived cells** ([`control_all`]): every [`sluice_aggregate::Formula`] cell is recomputed
 //!    from the released values of its inputs, in this table or another, and left null (reason
-//!    `derived`) when any input is withheld ([`derive`]).
+//!    `derived`) when any input is withheld ([`derive`](mod@derive)).
 //!
 //! A released row says only `released`, `merged` or `withheld` ([`Status::label`]); the reason
 //! is kept for the secure area's log ([`Status::log_label`], [`CheckedTable::notes`]).
@@ -354,7 +354,7 @@ pub fn control(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseErr
 }
 
 /// Applies the disclosure rules to every table of a release, then recomputes every derived cell
-/// from the released values of all of them ([`derive`]).
+/// from the released values of all of them ([`derive`](mod@derive)).
 pub fn control_all(tables: &[Table], rules: &Rules) -> Result<Vec<CheckedTable>, DiscloseError> {
     let mut out = tables
         .iter()

@@ -108,13 +108,31 @@ pub(crate) fn run(seen: &[Seen], rules: &Rules, v: &mut Verdict) {
     // count is still a finding.
     let bound = largest.saturating_mul(4).saturating_add(1000);
     for t in seen {
+        // The counts behind a share are the table's own (rounded) counts: search a little past
+        // the table's largest.
+        let local = table_max(t)
+            .saturating_mul(2)
+            .saturating_add(100)
+            .min(bound);
         rates(t, rules, v);
-        wilson(t, rules, bound, v);
+        wilson(t, rules, local, v);
         mcnemar(t, seen, rules, bound, v);
         log_se(t, rules, bound, v);
         t_quantile(t, rules, v);
         means(t, rules, v);
     }
+}
+
+/// The largest released count of a table.
+fn table_max(t: &Seen) -> u64 {
+    t.columns
+        .iter()
+        .enumerate()
+        .filter(|(_, c)| matches!(c.role, Role::Patients | Role::Count))
+        .flat_map(|(c, _)| t.cols[c].iter().filter_map(Value::as_i64))
+        .max()
+        .unwrap_or(0)
+        .max(0) as u64
 }
 
 fn file(t: &Seen) -> String {
@@ -250,7 +268,13 @@ fn mcnemar(t: &Seen, seen: &[Seen], rules: &Rules, bound: u64, v: &mut Verdict) 
             continue;
         };
         let p = t.num(r, "p_exact");
-        let found: Vec<(u64, u64)> = mcnemar_pairs(chi2, bound)
+        // The discordant pairs are some of the row's patients: b + c is at most its n_patients
+        // before rounding.
+        let row_bound = t
+            .num(r, "n_patients")
+            .map_or(bound, |n| n as u64 + rules.rounding_base().max(1) + 10)
+            .min(bound);
+        let found: Vec<(u64, u64)> = mcnemar_pairs(chi2, row_bound)
             .into_iter()
             .filter(|&(b, c)| {
                 p.is_none_or(|p| {
