@@ -339,6 +339,18 @@ pub struct Table {
     /// Cells that are exact functions of released values (see [`Formula`]).
     #[serde(default)]
     pub derived: Vec<Derived>,
+    /// Rows that count the same patients as cells of other tables (see [`Link`]).
+    #[serde(default)]
+    pub links: Vec<Link>,
+}
+
+/// A row of this table whose patients are exactly the patients of `parts` (cells of other
+/// tables, disjoint): the same count released in two tables. Disclosure control protects the
+/// relation like a margin, across tables: no member may be the only one withheld.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Link {
+    pub row: usize,
+    pub parts: Vec<CellRef>,
 }
 
 impl Table {
@@ -352,6 +364,7 @@ impl Table {
             constraints: Vec::new(),
             histogram: None,
             derived: Vec::new(),
+            links: Vec::new(),
         }
     }
 

@@ -32,6 +32,10 @@
 //!    from the released values of its inputs, in this table or another, and left null (reason
 //!    `derived`) when any input is withheld ([`derive`](mod@derive)).
 //!
+//! 8. **Links across tables** ([`sluice_aggregate::Link`]): a count released in two tables (a
+//!    subgroup's size and its transition cells, the cohort's bands and the transition margins)
+//!    is protected like a margin across them, to a fixed point with each table's own margins.
+//!
 //! A released row says only `released`, `merged` or `withheld` ([`Status::label`]); the reason
 //! is kept for the secure area's log ([`Status::log_label`], [`CheckedTable::notes`]).
 //!
@@ -40,9 +44,9 @@
 //! # Limits
 //!
 //! - Secondary suppression protects each cell against exact recovery by subtraction within the
-//!   constraints recorded on the table. It does not defend against interval (linear-programming)
-//!   attacks that bound a withheld cell between values, nor against differencing across tables,
-//!   across releases, or against constraints the table does not record.
+//!   constraints and links recorded with the tables. It does not defend against interval
+//!   (linear-programming) attacks that bound a withheld cell between values, nor against
+//!   relations measure does not record (differencing across releases is the ledger's).
 //! - Two withheld cells in one constraint still reveal their sum (to within rounding).
 //! - Rounding is unbiased nearest-multiple rounding, not controlled rounding: rounded parts need
 //!   not add up to the rounded total, and many overlapping tables can narrow a true value.
@@ -360,8 +364,84 @@ pub fn control_all(tables: &[Table], rules: &Rules) -> Result<Vec<CheckedTable>,
         .iter()
         .map(|t| control_one(t, rules))
         .collect::<Result<Vec<_>, _>>()?;
+    link_protect(tables, &mut out)?;
     derive::apply(tables, &mut out, rules)?;
     Ok(out)
+}
+
+/// Secondary suppression across tables over [`sluice_aggregate::Link`]s: a count released in
+/// one table and withheld in another (or a total whose only withheld part sits in another
+/// table) would give the withheld one back. Runs to a fixed point, re-running each table's own
+/// margins after every late withholding.
+fn link_protect(tables: &[Table], out: &mut [CheckedTable]) -> Result<(), DiscloseError> {
+    let index = |name: &str, here: usize| -> Result<usize, DiscloseError> {
+        if name.is_empty() {
+            return Ok(here);
+        }
+        tables
+            .iter()
+            .position(|t| t.name == name)
+            .ok_or_else(|| DiscloseError::Value {
+                table: tables[here].name.clone(),
+                row: 0,
+                column: String::new(),
+                message: format!("a link refers to table {name}, which is not released with it"),
+            })
+    };
+    let mut links: Vec<Vec<(usize, usize)>> = Vec::new();
+    for (i, t) in tables.iter().enumerate() {
+        for l in &t.links {
+            let mut members = vec![(i, out[i].row_map[l.row])];
+            for p in &l.parts {
+                let j = index(&p.table, i)?;
+                let r = *out[j]
+                    .row_map
+                    .get(p.row)
+                    .ok_or_else(|| DiscloseError::Value {
+                        table: t.name.clone(),
+                        row: l.row,
+                        column: String::new(),
+                        message: format!(
+                            "a link refers to row {} of {}, which has fewer rows",
+                            p.row, tables[j].name
+                        ),
+                    })?;
+                members.push((j, r));
+            }
+            links.push(members);
+        }
+    }
+    for _ in 0..1000 {
+        let mut changed = false;
+        for members in &links {
+            let held = members
+                .iter()
+                .filter(|&&(j, r)| out[j].status[r].is_withheld() && out[j].weights[r] > 0.0)
+                .count();
+            let any = members.iter().any(|&(j, r)| out[j].status[r].is_withheld());
+            if !any || held >= 2 {
+                continue;
+            }
+            let pick = members
+                .iter()
+                .copied()
+                .filter(|&(j, r)| !out[j].status[r].is_withheld() && out[j].weights[r] > 0.0)
+                .min_by(|a, b| {
+                    out[a.0].weights[a.1]
+                        .total_cmp(&out[b.0].weights[b.1])
+                        .then(a.cmp(b))
+                });
+            if let Some((j, r)) = pick {
+                out[j].withhold_rows(&[r], "secondary");
+                out[j].protect_again();
+                changed = true;
+            }
+        }
+        if !changed {
+            return Ok(());
+        }
+    }
+    Ok(())
 }
 
 fn control_one(table: &Table, rules: &Rules) -> Result<CheckedTable, DiscloseError> {

@@ -681,3 +681,37 @@ fn a_withheld_zero_is_not_protection() {
         ]
     );
 }
+
+// Crafted: the same 23 patients are counted in two tables. In the first, the cell is withheld by
+// secondary suppression (beside a cell of 4); released in the second it would give it back, so
+// the link withholds it there too (common practice: secondary suppression across linked tables,
+// Hundepool et al. 2012 §4.3).
+#[test]
+fn a_count_linked_across_tables_is_withheld_with_its_copy() {
+    use sluice_aggregate::{CellRef, Link};
+    let mut a = counts_table("bands", &["band"]);
+    for (b, n) in [("x", 23), ("y", 4), ("z", 30), (ALL, 57)] {
+        a.push(vec![b.into(), Value::Int(n), Value::Int(n), Value::Null]);
+    }
+    a.add_margin_constraints("band").unwrap();
+    let mut g = counts_table("groups", &["group"]);
+    g.push(vec![
+        "x_only".into(),
+        Value::Int(23),
+        Value::Int(23),
+        Value::Null,
+    ]);
+    g.push(vec![
+        "other".into(),
+        Value::Int(40),
+        Value::Int(40),
+        Value::Null,
+    ]);
+    g.links.push(Link {
+        row: 0,
+        parts: vec![CellRef::of("bands", 0, "patients")],
+    });
+    let out = control_all(&[a, g], &unrounded()).unwrap();
+    assert_eq!(labels(&out[0])[0], "withheld:secondary");
+    assert_eq!(labels(&out[1]), ["withheld:secondary", "released"]);
+}

@@ -4,7 +4,7 @@
 use crate::load::{Event, Tagged};
 use crate::policy::{BandStatistic, Study};
 use crate::{MeasureError, counts_table, patients_col};
-use sluice_aggregate::{ALL, Constraint, Role, Table, Value, col, dim};
+use sluice_aggregate::{ALL, CellRef, Constraint, Link, Role, Table, Value, col, dim};
 use std::collections::{BTreeMap, HashSet};
 
 /// A cohort patient with everything later steps need.
@@ -327,9 +327,11 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
         }
     }
     t.add_margin_constraints("band")?;
+    let bands_at = out.len();
     out.push(t);
 
     if let Some((b, a)) = study.compare {
+        let mut bands_table_links = Vec::new();
         let mut t = counts_table(
             "band_transitions",
             "Band transitions",
@@ -341,6 +343,22 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
         );
         let mut keys: Vec<String> = bands.clone();
         keys.push(ALL.into());
+        let cell =
+            |x: usize, y: usize| CellRef::of("band_transitions", x * keys.len() + y, "n_patients");
+        // The whole cohort's bands in each compared window are the transition table's margins:
+        // the same counts in two tables, protected together.
+        let nb = bands.len();
+        let all = keys.len() - 1;
+        for (wi, w) in [(b, true), (a, false)] {
+            for (bi, _) in keys.iter().enumerate() {
+                let row = wi * (nb + 1) + bi;
+                let part = if w { cell(bi, all) } else { cell(all, bi) };
+                bands_table_links.push(Link {
+                    row,
+                    parts: vec![part],
+                });
+            }
+        }
         for x in &keys {
             for y in &keys {
                 let n = cohort
@@ -357,6 +375,7 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
         t.add_margin_constraints("after_band")?;
         t.add_margin_constraints("before_band")?;
         out.push(t);
+        out[bands_at].links.extend(bands_table_links);
 
         let mut t = counts_table(
             "subgroups",
@@ -364,12 +383,43 @@ pub fn interval_tables(study: &Study, cohort: &Cohort) -> Result<Vec<Table>, Mea
             "Cohort patients in each named subgroup of the band transition",
             &["subgroup"],
         );
-        for g in &subgroups {
+        let nw = study.windows.len();
+        for (gi, g) in subgroups.iter().enumerate() {
             let n = cohort
                 .members
                 .iter()
                 .filter(|m| m.subgroups.contains(g))
                 .count();
+            // A subgroup's size is the sum of its transition cells, and the total of its bands
+            // in every window.
+            let parts: Vec<CellRef> = match study.subgroups.iter().find(|s| &s.name == g) {
+                None => vec![cell(all, all)],
+                Some(sg) => {
+                    let mut p = Vec::new();
+                    for (xi, x) in bands.iter().enumerate() {
+                        for (yi, y) in bands.iter().enumerate() {
+                            if sg.contains(x, y) {
+                                p.push(cell(xi, yi));
+                            }
+                        }
+                    }
+                    p
+                }
+            };
+            let row = t.rows.len();
+            if !parts.is_empty() {
+                t.links.push(Link { row, parts });
+            }
+            for wi in 0..nw {
+                t.links.push(Link {
+                    row,
+                    parts: vec![CellRef::of(
+                        "interval_bands",
+                        (gi * nw + wi) * (nb + 1) + nb,
+                        "n_patients",
+                    )],
+                });
+            }
             t.push(vec![g.as_str().into(), n.into()]);
         }
         out.push(t);
