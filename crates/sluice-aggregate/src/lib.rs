@@ -388,6 +388,23 @@ impl Table {
         });
     }
 
+    /// Declares the rate per 100 patient-years of `row` and its exact Poisson limits at `level`
+    /// (columns `rate_per_100py`, `lower`, `upper`) as derived from its `n_events` and
+    /// `person_years`.
+    pub fn derive_rate_per_100py(&mut self, row: usize, level: f64) {
+        let inputs = vec![
+            CellRef::here(row, "n_events"),
+            CellRef::here(row, "person_years"),
+        ];
+        for (c, f) in [
+            ("rate_per_100py", Formula::Rate),
+            ("lower", Formula::PoissonLower),
+            ("upper", Formula::PoissonUpper),
+        ] {
+            self.derive(row, c, f, inputs.clone(), level, 100.0);
+        }
+    }
+
     /// Sets the release precision of a column.
     pub fn set_precision(&mut self, column: &str, precision: Precision) {
         if let Some(c) = self.columns.iter_mut().find(|c| c.name == column) {

@@ -1,6 +1,6 @@
 //! Count tables: pooled cells are sums of the sites' released cells, keyed by dimension values.
 
-use sluice_aggregate::{CellRef, Constraint, Formula, Role, Table, Value, col, dim};
+use sluice_aggregate::{Constraint, Role, Table, Value, col, dim};
 use std::collections::BTreeMap;
 
 use crate::site::SiteTable;
@@ -217,18 +217,7 @@ pub(crate) fn pool(
         }
         if rates {
             row.extend([Value::Null, Value::Null, Value::Null]);
-            let r = out.rows.len();
-            let inputs = vec![
-                CellRef::here(r, "n_events"),
-                CellRef::here(r, "person_years"),
-            ];
-            for (c, f) in [
-                ("rate_per_100py", Formula::Rate),
-                ("lower", Formula::PoissonLower),
-                ("upper", Formula::PoissonUpper),
-            ] {
-                out.derive(r, c, f, inputs.clone(), RATE_LEVEL, 100.0);
-            }
+            out.derive_rate_per_100py(out.rows.len(), RATE_LEVEL);
         }
         if !missing.is_empty() {
             log.push(&t.name, p, missing, released_patients);

@@ -163,18 +163,7 @@ pub fn critical_tables(
         row_of.insert((k.clone(), *ctxn), t.rows.len());
         if rates {
             // Rate and limits from the released events and the rounded person-time.
-            let r = t.rows.len();
-            let inputs = vec![
-                CellRef::here(r, "n_events"),
-                CellRef::here(r, "person_years"),
-            ];
-            for (c, f) in [
-                ("rate_per_100py", Formula::Rate),
-                ("lower", Formula::PoissonLower),
-                ("upper", Formula::PoissonUpper),
-            ] {
-                t.derive(r, c, f, inputs.clone(), level, 100.0);
-            }
+            t.derive_rate_per_100py(t.rows.len(), level);
         }
         let mut row: Vec<Value> = k.iter().map(|x| x.as_str().into()).collect();
         row.extend([(*ctxn).into(), ps.len().into(), (*n).into()]);
