@@ -110,7 +110,8 @@ fn release(policies: &Path, a: &ReleaseArgs) -> Result<sluice_release::ReleaseMa
     provenance.made_by = a.analyst.clone().unwrap_or_default();
     provenance.inputs.push(sluice_aggregate::Input {
         role: "candidates".into(),
-        path: candidates_path.to_string_lossy().into_owned(),
+        // The file's name only: the work folder's path inside the secure area is not released.
+        path: sluice_aggregate::Candidates::FILE.into(),
         sha256: candidates_sha256,
     });
     let report = crate::report::render(&provenance, &rules, &checked)?;

@@ -10,7 +10,7 @@ use std::path::Path;
 
 pub fn render(p: &Provenance, rules: &Rules, tables: &[CheckedTable]) -> Result<String> {
     let summary = format!(
-        "at least {} distinct patients per cell; zeros {}; counts rounded to base {}; quantiles need {} observations beyond them; dominance ({}, {} %) and p% = {}; secondary suppression: {:?} ({})",
+        "at least {} distinct patients per cell; zeros {}; counts rounded to base {}, person-time to {} years; quantiles need {} observations beyond them; dominance ({}, {} %) and p% = {}; secondary suppression: {:?}; differencing: {} ({})",
         rules.threshold(),
         if rules.show_zeros() {
             "shown"
@@ -18,11 +18,13 @@ pub fn render(p: &Provenance, rules: &Rules, tables: &[CheckedTable]) -> Result<
             "withheld"
         },
         rules.rounding_base(),
+        rules.person_time_base(),
         rules.quantile_min_beyond(),
         rules.dominance().n,
         rules.dominance().k,
         rules.p_percent(),
         rules.secondary(),
+        rules.differencing().as_str(),
         rules.path().display(),
     );
     let meta = ReportMeta::from_provenance(p, &summary);
