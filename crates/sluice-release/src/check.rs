@@ -455,6 +455,17 @@ fn rebuilt_margins(
     out
 }
 
+/// The probability a quantile column's name stands for: `median`, `qNN` / `pNN` (percent, with
+/// `_` for a decimal point, e.g. `q2_5`).
+pub(crate) fn quantile_of_name(name: &str) -> Option<f64> {
+    if name == "median" {
+        return Some(0.5);
+    }
+    let digits = name.strip_prefix('q').or_else(|| name.strip_prefix('p'))?;
+    let pct: f64 = digits.replace('_', ".").parse().ok()?;
+    (0.0..=100.0).contains(&pct).then_some(pct / 100.0)
+}
+
 /// A released count obeys the rules: at least the threshold and a multiple of the rounding base,
 /// or 0 where zeros are shown. Check's own reading of the rules, not the release code's.
 pub(crate) fn count_ok(k: i64, rules: &Rules) -> bool {
@@ -1036,6 +1047,33 @@ fn check_table(
                     format!("{} is released with {PATIENTS} = {np:?}, below {t}", col.name),
                 ),
                 Role::Quantile { p, n: nc } => {
+                    // The probability is the column's name (q25, p10, median), not what the
+                    // file claims, and the observations are counted in a count column.
+                    let named = quantile_of_name(&col.name);
+                    if named.is_none_or(|q| (q - p).abs() > 1e-9) {
+                        v.fail(
+                            file,
+                            Some(r),
+                            "quantile",
+                            format!(
+                                "{} is recorded as the quantile at p = {p}, but its name says {named:?}",
+                                col.name
+                            ),
+                        );
+                        continue;
+                    }
+                    let counted = columns.iter().any(|c| {
+                        c.name == *nc && matches!(c.role, Role::Patients | Role::Count)
+                    });
+                    if !counted {
+                        v.fail(
+                            file,
+                            Some(r),
+                            "quantile",
+                            format!("{} counts its observations in {nc}, which is not a count column", col.name),
+                        );
+                        continue;
+                    }
                     let obs = columns
                         .iter()
                         .position(|c| c.name == *nc)
@@ -1137,4 +1175,19 @@ fn check_table(
         cols,
         withheld,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::quantile_of_name;
+
+    #[test]
+    fn quantile_probabilities_come_from_names() {
+        assert_eq!(quantile_of_name("median"), Some(0.5));
+        assert_eq!(quantile_of_name("q25"), Some(0.25));
+        assert_eq!(quantile_of_name("p90"), Some(0.9));
+        assert_eq!(quantile_of_name("q2_5"), Some(0.025));
+        assert_eq!(quantile_of_name("mean"), None);
+        assert_eq!(quantile_of_name("q150"), None);
+    }
 }

@@ -259,3 +259,25 @@ fn emptied_constraints_do_not_hide_a_restored_cell() {
         "bands.parquet, row 1: secondary: the only withheld cell",
     );
 }
+
+#[test]
+fn a_quantile_recorded_at_another_probability_is_refused() {
+    // The file may not say what a quantile column is: check reads its probability from its name.
+    let dir = tempfile::tempdir().unwrap();
+    let (rel, _) = release(dir.path(), "r", "quillmere");
+    rewrite(&rel, "bands.parquet", |_, _, kv| {
+        for k in kv.iter_mut() {
+            if k.key == "sluice.columns" {
+                let v = k.value.clone().unwrap();
+                assert!(v.contains("\"p\":0.5"), "{v}");
+                k.value = Some(v.replace("\"p\":0.5", "\"p\":0.1"));
+            }
+        }
+    });
+    let v = check(&rel, &policy());
+    fails_with(
+        &v,
+        "quantile",
+        "recorded as the quantile at p = 0.1, but its name says Some(0.5)",
+    );
+}
