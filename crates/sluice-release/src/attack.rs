@@ -421,9 +421,10 @@ fn means(t: &Seen, rules: &Rules, v: &mut Verdict) {
             Some(p @ Precision::Grid { n, .. }) => Some((p.clone(), n.clone())),
             _ => None,
         };
+        // Intervals are whole days whatever the file declares: a forged coarse grid must not
+        // hide a mean that pins n_intervals.
         let (prec, ncol) = match (declared, col.name.as_str()) {
-            (Some(d), _) => d,
-            (None, "mean_days") => (
+            (_, "mean_days") => (
                 Precision::Grid {
                     grid: 1.0,
                     n: "n_intervals".into(),
@@ -431,6 +432,7 @@ fn means(t: &Seen, rules: &Rules, v: &mut Verdict) {
                 },
                 "n_intervals".to_string(),
             ),
+            (Some(d), _) => d,
             _ => continue,
         };
         let quantile = matches!(col.role, Role::Quantile { .. });
