@@ -92,18 +92,7 @@ pub(crate) fn sanity(
 
 /// Runs every attack over the tables check read.
 pub(crate) fn run(seen: &[Seen], rules: &Rules, v: &mut Verdict) {
-    let largest = seen
-        .iter()
-        .flat_map(|t| {
-            t.columns
-                .iter()
-                .enumerate()
-                .filter(|(_, c)| matches!(c.role, Role::Patients | Role::Count))
-                .flat_map(move |(c, _)| t.cols[c].iter().filter_map(Value::as_i64))
-        })
-        .max()
-        .unwrap_or(0)
-        .max(0) as u64;
+    let largest = seen.iter().map(table_max).max().unwrap_or(0);
     // Searches run well past anything released: an implied count larger than every released
     // count is still a finding.
     let bound = largest.saturating_mul(4).saturating_add(1000);

@@ -2,12 +2,8 @@
 //! the file, row and rule.
 
 use crate::common::*;
-use arrow::array::{ArrayRef, Float64Array, Int64Array, StringArray};
-use arrow::datatypes::{DataType, Field, Schema};
-use arrow::record_batch::RecordBatch;
-use parquet::arrow::ArrowWriter;
-use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
-use parquet::file::properties::WriterProperties;
+use arrow::array::{Float64Array, Int64Array, StringArray};
+use arrow::datatypes::DataType;
 use sluice_release::{Verdict, check};
 use std::path::Path;
 use std::sync::Arc;
@@ -129,65 +125,37 @@ fn rules_lowered_below_the_floor_are_caught() {
 /// `row` set to `n`, and records the new file's hash in the manifest, so only the content rules
 /// can catch it.
 fn hand_written_bands(rel: &Path, row: usize, n: i64, status: &str) {
-    let path = rel.join("bands.parquet");
-    let b = ParquetRecordBatchReaderBuilder::try_new(std::fs::File::open(&path).unwrap()).unwrap();
-    let kv = b.metadata().file_metadata().key_value_metadata().cloned();
-    let batch = b.build().unwrap().next().unwrap().unwrap();
-    let schema = batch.schema();
-    let mut cols: Vec<ArrayRef> = batch.columns().to_vec();
-    let np = schema.index_of("n_patients").unwrap();
-    let mut v: Vec<Option<i64>> = cols[np]
-        .as_any()
-        .downcast_ref::<Int64Array>()
-        .unwrap()
-        .iter()
-        .collect();
-    v[row] = Some(n);
-    cols[np] = Arc::new(Int64Array::from(v));
-    let dc = schema.index_of("disclosure").unwrap();
-    let mut s: Vec<Option<String>> = cols[dc]
-        .as_any()
-        .downcast_ref::<StringArray>()
-        .unwrap()
-        .iter()
-        .map(|x| x.map(String::from))
-        .collect();
-    s[row] = Some(status.into());
-    cols[dc] = Arc::new(StringArray::from(s));
-    let mean = schema.index_of("mean").unwrap();
-    let mut m: Vec<Option<f64>> = cols[mean]
-        .as_any()
-        .downcast_ref::<Float64Array>()
-        .unwrap()
-        .iter()
-        .collect();
-    m[row] = Some(1.33);
-    cols[mean] = Arc::new(Float64Array::from(m));
-    let schema = Arc::new(Schema::new(
-        schema
-            .fields()
+    rewrite(rel, "bands.parquet", |cols, schema, _| {
+        let np = schema.index_of("n_patients").unwrap();
+        assert_eq!(schema.field(np).data_type(), &DataType::Int64);
+        let mut v: Vec<Option<i64>> = cols[np]
+            .as_any()
+            .downcast_ref::<Int64Array>()
+            .unwrap()
             .iter()
-            .map(|f| Field::new(f.name(), f.data_type().clone(), f.is_nullable()))
-            .collect::<Vec<_>>(),
-    ));
-    assert_eq!(schema.field(np).data_type(), &DataType::Int64);
-    let batch = RecordBatch::try_new(schema.clone(), cols).unwrap();
-    let props = WriterProperties::builder()
-        .set_key_value_metadata(kv)
-        .build();
-    let mut buf = Vec::new();
-    let mut w = ArrowWriter::try_new(&mut buf, schema, Some(props)).unwrap();
-    w.write(&batch).unwrap();
-    w.close().unwrap();
-    std::fs::write(&path, &buf).unwrap();
-    let mut man = read_manifest(rel);
-    for f in man["files"].as_array_mut().unwrap() {
-        if f["name"] == "bands.parquet" {
-            f["sha256"] = sha256(&buf).into();
-            f["bytes"] = buf.len().into();
-        }
-    }
-    write_manifest(rel, &man);
+            .collect();
+        v[row] = Some(n);
+        cols[np] = Arc::new(Int64Array::from(v));
+        let dc = schema.index_of("disclosure").unwrap();
+        let mut s: Vec<Option<String>> = cols[dc]
+            .as_any()
+            .downcast_ref::<StringArray>()
+            .unwrap()
+            .iter()
+            .map(|x| x.map(String::from))
+            .collect();
+        s[row] = Some(status.into());
+        cols[dc] = Arc::new(StringArray::from(s));
+        let mean = schema.index_of("mean").unwrap();
+        let mut m: Vec<Option<f64>> = cols[mean]
+            .as_any()
+            .downcast_ref::<Float64Array>()
+            .unwrap()
+            .iter()
+            .collect();
+        m[row] = Some(1.33);
+        cols[mean] = Arc::new(Float64Array::from(m));
+    });
 }
 
 #[test]

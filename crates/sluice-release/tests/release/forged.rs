@@ -2,52 +2,11 @@
 //! message naming file, row or rule. Crafted cases; NHS number 943 476 5919 is the NHS Data
 //! Dictionary's worked example of a valid number.
 
-use crate::common::{policy, provenance, read_manifest, release, rules, sha256, write_manifest};
-use parquet::arrow::ArrowWriter;
-use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+use crate::common::{policy, provenance, read_manifest, release, rewrite, rules, write_manifest};
 use parquet::file::metadata::KeyValue;
-use parquet::file::properties::WriterProperties;
 use sluice_aggregate::{Role, Table, Value, col, dim};
 use sluice_disclose::control_all;
 use sluice_release::{Verdict, check, write_release};
-
-/// Rewrites one released table by hand (arrow-rs), letting `edit` change its columns and
-/// metadata, and records the new hash in the manifest, so only content rules can catch it.
-fn rewrite(
-    rel: &std::path::Path,
-    file: &str,
-    edit: impl FnOnce(&mut Vec<arrow::array::ArrayRef>, &arrow::datatypes::Schema, &mut Vec<KeyValue>),
-) {
-    let path = rel.join(file);
-    let b = ParquetRecordBatchReaderBuilder::try_new(std::fs::File::open(&path).unwrap()).unwrap();
-    let mut kv = b
-        .metadata()
-        .file_metadata()
-        .key_value_metadata()
-        .cloned()
-        .unwrap();
-    let batch = b.build().unwrap().next().unwrap().unwrap();
-    let schema = batch.schema();
-    let mut cols = batch.columns().to_vec();
-    edit(&mut cols, &schema, &mut kv);
-    let batch = arrow::record_batch::RecordBatch::try_new(schema.clone(), cols).unwrap();
-    let props = WriterProperties::builder()
-        .set_key_value_metadata(Some(kv))
-        .build();
-    let mut buf = Vec::new();
-    let mut w = ArrowWriter::try_new(&mut buf, schema, Some(props)).unwrap();
-    w.write(&batch).unwrap();
-    w.close().unwrap();
-    std::fs::write(&path, &buf).unwrap();
-    let mut man = read_manifest(rel);
-    for f in man["files"].as_array_mut().unwrap() {
-        if f["name"] == file {
-            f["sha256"] = sha256(&buf).into();
-            f["bytes"] = buf.len().into();
-        }
-    }
-    write_manifest(rel, &man);
-}
 
 fn fails_with(v: &Verdict, rule: &str, text: &str) {
     assert!(
